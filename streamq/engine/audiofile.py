@@ -1,0 +1,147 @@
+"""Audio file helpers shared by file nodes: clear errors on open, and a writer
+that never leaves half a file under the final name."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+_PCM_BITS = {"PCM_S8": 8, "PCM_U8": 8, "PCM_16": 16, "PCM_24": 24, "PCM_32": 32}
+
+
+def subtype_bits(subtype: str) -> int | None:
+    """Word length of an integer PCM subtype (None for float and compressed formats).
+
+    FLAC stores integer PCM, so its PCM_16/PCM_24 subtypes count too.
+    """
+    return _PCM_BITS.get(subtype)
+
+
+def open_for_reading(path: Path, fail: Callable[[str], Exception]):
+    """Open an audio file with soundfile; errors become one-line messages."""
+    import soundfile as sf
+    path = Path(path)
+    if not path.exists():
+        raise fail(f"{path}: no such file")
+    if path.is_dir():
+        raise fail(f"{path}: is a folder, not an audio file")
+    try:
+        f = sf.SoundFile(str(path))
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        msg = str(exc).split("\n")[0]
+        if path.stat().st_size == 0:
+            msg = "the file is empty"
+        raise fail(f"{path}: not a readable audio file ({msg})") from None
+    info = _Info(f.samplerate, f.channels, f.frames, f.subtype, f.format)
+    if info.frames <= 0:
+        f.close()
+        raise fail(f"{path}: the file holds no audio frames")
+    return f, info
+
+
+class _Info:
+    __slots__ = ("samplerate", "channels", "frames", "subtype", "format")
+
+    def __init__(self, samplerate, channels, frames, subtype, fmt):
+        self.samplerate, self.channels, self.frames = samplerate, channels, frames
+        self.subtype, self.format = subtype, fmt
+
+
+def format_for(path: Path) -> str:
+    """libsndfile major format from a file name's extension."""
+    import soundfile as sf
+    ext = path.suffix.lower().lstrip(".")
+    fmts = {k.lower(): k for k in sf.available_formats()}
+    alias = {"aif": "aiff", "oga": "ogg", "opus": "ogg"}
+    ext = alias.get(ext, ext)
+    if ext not in fmts:
+        raise ValueError(f"unknown audio file extension '.{ext}' (known: "
+                         f"{', '.join(sorted(fmts))})")
+    return fmts[ext]
+
+
+class SafeWriter:
+    """Writes an audio file under a temporary name beside the target and renames
+    it on close. On an interrupted run the file written so far is closed
+    (header updated, so it stays valid) and renamed too; on a write error the
+    temporary file is removed and nothing is left under the final name.
+    """
+
+    def __init__(self, path: Path, rate: int, channels: int, subtype: str | None,
+                 fail: Callable[[str], Exception]):
+        import soundfile as sf
+        self.path = Path(path)
+        self.fail = fail
+        try:
+            fmt = format_for(self.path)
+        except ValueError as exc:
+            raise fail(str(exc)) from None
+        subtype = subtype or sf.default_subtype(fmt)
+        if not sf.check_format(fmt, subtype):
+            raise fail(f"{self.path}: subtype {subtype} is not available for {fmt} files "
+                       f"(available: {', '.join(sf.available_subtypes(fmt))})")
+        self.subtype = subtype
+        self.bits = subtype_bits(subtype)
+        self.tmp = self.path.with_name(f".{self.path.name}.part")
+        try:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+            self._f = sf.SoundFile(str(self.tmp), "w", samplerate=rate, channels=channels,
+                                   subtype=subtype, format=fmt)
+        except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+            raise fail(f"{self.path}: cannot create ({_short(exc)})") from None
+        self.frames = 0
+        self.clipped = 0
+        if self.bits is not None or fmt in ("FLAC", "OGG", "MP3"):
+            bits = self.bits or 16
+            self._hi = 1.0 - 2.0 ** -(bits - 1)
+        else:
+            self._hi = None
+
+    def write(self, data: np.ndarray) -> None:
+        if self._hi is not None:
+            over = (data > self._hi) | (data < -1.0)
+            if over.any():
+                self.clipped += int(over.sum())
+                data = np.clip(data, -1.0, self._hi)
+        try:
+            self._f.write(data)
+        except Exception as exc:
+            self.discard()
+            raise self.fail(f"{self.path}: write failed after {self.frames} frames "
+                            f"({_short(exc)}); nothing was left under that name") from None
+        self.frames += data.shape[0]
+
+    def close(self) -> None:
+        """Close and move into place (also used after an interruption)."""
+        if self._f is None:
+            return
+        f, self._f = self._f, None
+        try:
+            f.close()
+            os.replace(self.tmp, self.path)
+        except Exception as exc:
+            try:
+                self.tmp.unlink()
+            except OSError:
+                pass
+            raise self.fail(f"{self.path}: could not finish the file ({_short(exc)})") from None
+
+    def discard(self) -> None:
+        if self._f is not None:
+            try:
+                self._f.close()
+            except Exception:
+                pass
+            self._f = None
+        try:
+            self.tmp.unlink()
+        except OSError:
+            pass
+
+
+def _short(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__

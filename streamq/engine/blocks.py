@@ -1,0 +1,165 @@
+"""Data that travels on the wires between nodes.
+
+Every wire carries one :class:`Packet` per scheduler step. A packet holds a
+block (signal or index) covering the absolute frame range
+``[block.start, block.start + block.frames)`` and the events that take effect
+inside that range (or at its end), in order.
+
+See ``DESIGN.md`` ("Data on the wires") for the rules these types follow.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Literal, Union
+
+import numpy as np
+
+
+def index_dtype(n_levels: int) -> np.dtype:
+    """Smallest unsigned integer dtype that can hold indices ``0 .. n_levels-1``."""
+    for dt in (np.uint8, np.uint16, np.uint32):
+        if n_levels - 1 <= np.iinfo(dt).max:
+            return np.dtype(dt)
+    return np.dtype(np.uint64)
+
+
+@dataclass(frozen=True, slots=True)
+class SignalBlock:
+    """Float64 samples shaped ``(frames, channels)`` starting at absolute frame ``start``."""
+
+    data: np.ndarray
+    start: int
+    rate: int
+
+    @property
+    def frames(self) -> int:
+        return int(self.data.shape[0])
+
+    @property
+    def channels(self) -> int:
+        return int(self.data.shape[1])
+
+    @property
+    def stop(self) -> int:
+        return self.start + self.frames
+
+
+@dataclass(frozen=True, slots=True)
+class IndexBlock:
+    """Quantizer indices shaped ``(frames, channels)``.
+
+    ``versions`` lists, per channel, the ``(from_sample, version)`` pairs of the
+    codebook versions in force inside the block; the first pair starts at or
+    before ``start``.
+    """
+
+    data: np.ndarray
+    start: int
+    rate: int
+    versions: tuple[tuple[tuple[int, int], ...], ...] = ()
+
+    @property
+    def frames(self) -> int:
+        return int(self.data.shape[0])
+
+    @property
+    def channels(self) -> int:
+        return int(self.data.shape[1])
+
+    @property
+    def stop(self) -> int:
+        return self.start + self.frames
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class CodebookUpdate:
+    """A new codebook for one channel, in force from ``at_sample`` on.
+
+    The decoder needs only ``levels``; ``thresholds`` travel along for meters
+    and plots. ``side_info_bits`` is what sending this update costs on the
+    link (0 when the decoder can derive it itself).
+    """
+
+    version: int
+    at_sample: int
+    channel: int
+    thresholds: np.ndarray
+    levels: np.ndarray
+    side_info_bits: int
+    method: str = ""
+
+    @property
+    def n_levels(self) -> int:
+        return int(self.levels.shape[0])
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class PdfSnapshot:
+    """The amplitude distribution of one channel over ``[window_start, at_sample)``.
+
+    ``centers``/``counts`` is the histogram (counts may be fractional when
+    forgetting is on); ``model`` holds a fitted parametric PDF, if any;
+    ``stats`` holds mean, variance, kurtosis, crest factor and clip count;
+    ``drift`` is the divergence against the snapshot the codebook in force
+    was designed on (None when nothing to compare with).
+    """
+
+    at_sample: int
+    channel: int
+    window_start: int
+    centers: np.ndarray
+    counts: np.ndarray
+    stats: dict[str, float] = field(default_factory=dict)
+    model: dict[str, Any] | None = None
+    drift: float | None = None
+
+
+Event = Union[CodebookUpdate, PdfSnapshot]
+
+
+@dataclass(slots=True)
+class Packet:
+    """What one wire carries in one step: a block and the events that go with it.
+
+    ``indices`` is set on decoded-signal packets: the index block the samples
+    were rebuilt from, so meters can measure index entropy without
+    re-encoding.
+    """
+
+    block: SignalBlock | IndexBlock
+    events: tuple[Event, ...] = ()
+    indices: IndexBlock | None = None
+
+    @property
+    def frames(self) -> int:
+        return self.block.frames
+
+    @property
+    def start(self) -> int:
+        return self.block.start
+
+
+@dataclass(frozen=True, slots=True)
+class StreamSpec:
+    """What a node's output stream looks like; worked out before the run starts.
+
+    Attributes
+    ----------
+    kind : "signal" or "index"
+    rate : sample rate in Hz
+    channels : channel count
+    latency : frames of delay of this stream relative to source time
+    int_bits : if every sample is exactly ``k / 2**(int_bits-1)`` for integer k
+        (e.g. 16 for a 16-bit PCM source passed through unchanged), else None
+    frames : total length in frames when known, else None (live input)
+    extra : anything else a downstream node may need (e.g. estimator window)
+    """
+
+    kind: Literal["signal", "index"]
+    rate: int
+    channels: int
+    latency: int = 0
+    int_bits: int | None = None
+    frames: int | None = None
+    extra: dict[str, Any] = field(default_factory=dict)

@@ -1,0 +1,235 @@
+"""Graph files: TOML in, validated node configurations and a build order out.
+
+A graph file has a ``[graph]`` table (name, sample_rate, block) and one table
+per node under ``nodes``, named by its id. ``use`` names the node kind; each
+input is a field naming the upstream node id. Validation collects every
+problem it can find and reports them all at once, each naming the file, the
+node and the field.
+"""
+
+from __future__ import annotations
+
+import re
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Annotated, Any, Union
+
+from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, ValidationError
+
+from streamq.engine.node import Node, NodeConfig
+from streamq.engine.registry import registry
+from streamq.errors import StreamqError
+
+_ID = re.compile(r"^[A-Za-z_][A-Za-z0-9_-]{0,63}$")
+
+
+class GraphError(StreamqError):
+    """One or more problems in a graph file; each line names file, node and field."""
+
+    def __init__(self, problems: list[str]):
+        self.problems = [" ".join(p.split()) for p in problems]
+        Exception.__init__(self, "\n".join(self.problems))
+
+    def __str__(self) -> str:
+        return "\n".join(self.problems)
+
+
+class GraphHeader(BaseModel):
+    """The ``[graph]`` table."""
+
+    model_config = ConfigDict(extra="forbid")
+    name: str = Field("graph", min_length=1, max_length=200)
+    sample_rate: int | None = Field(None, ge=1, le=1_536_000,
+                                    description="Hz; taken from the file sources when left out")
+    block: int = Field(256, ge=1, le=1 << 20, description="frames per block in live runs")
+
+
+@dataclass
+class Graph:
+    """A validated graph: header, node objects in build order, and where it came from."""
+
+    header: GraphHeader
+    nodes: dict[str, Node]
+    order: list[str]
+    source: Path | None = None
+    raw: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def name(self) -> str:
+        return self.header.name
+
+
+def _fmt_loc(loc: tuple) -> str:
+    return ".".join(str(p) for p in loc)
+
+
+def _set_override(raw: dict[str, Any], item: str, label: str) -> str | None:
+    """Apply one ``node.field=value`` override to the raw TOML dict."""
+    if "=" not in item:
+        return f"{label}: --set {item!r}: expected NODE.FIELD=VALUE"
+    key, value_text = item.split("=", 1)
+    path = key.strip().split(".")
+    if len(path) != 2 or not all(path):
+        return f"{label}: --set {item!r}: expected NODE.FIELD=VALUE (or graph.FIELD=VALUE)"
+    try:
+        value = tomllib.loads(f"v = {value_text.strip()}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = value_text.strip()
+    node_id, fld = path
+    if node_id == "graph":
+        raw.setdefault("graph", {})[fld] = value
+        return None
+    nodes = raw.get("nodes")
+    if not isinstance(nodes, dict) or node_id not in nodes:
+        return f"{label}: --set {item!r}: there is no node '{node_id}'"
+    nodes[node_id][fld] = value
+    return None
+
+
+def _config_adapter(kinds: dict[str, type[Node]]) -> TypeAdapter:
+    models = tuple(cls.Config for cls in kinds.values())
+    if len(models) == 1:
+        return TypeAdapter(models[0])
+    return TypeAdapter(Annotated[Union[models], Field(discriminator="use")])
+
+
+def parse_graph(text: str, source: Path | None = None, overrides: list[str] = ()) -> Graph:
+    """Validate a graph given as TOML text. Raises GraphError listing every problem."""
+    label = str(source) if source is not None else "<graph>"
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise GraphError([f"{label}: TOML syntax error: {exc}"]) from None
+    return validate_graph(raw, source, overrides)
+
+
+def load_graph(path: str | Path, overrides: list[str] = ()) -> Graph:
+    """Read and validate a graph file."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise StreamqError(f"{path}: no such graph file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise StreamqError(f"{path}: cannot read graph file: {exc}") from None
+    return parse_graph(text, path, overrides)
+
+
+def validate_graph(raw: dict[str, Any], source: Path | None = None,
+                   overrides: list[str] = ()) -> Graph:
+    label = str(source) if source is not None else "<graph>"
+    problems: list[str] = []
+    for item in overrides:
+        msg = _set_override(raw, item, label)
+        if msg:
+            problems.append(msg)
+
+    unknown_top = sorted(set(raw) - {"graph", "nodes"})
+    for key in unknown_top:
+        problems.append(f"{label}: unknown top-level table '{key}' (expected [graph] and [nodes.<id>])")
+
+    header_raw = raw.get("graph", {})
+    header = GraphHeader()
+    if not isinstance(header_raw, dict):
+        problems.append(f"{label}: [graph] must be a table")
+    else:
+        try:
+            header = GraphHeader.model_validate(header_raw)
+        except ValidationError as exc:
+            for err in exc.errors():
+                problems.append(f"{label}: [graph], field '{_fmt_loc(err['loc'])}': {err['msg']}")
+
+    nodes_raw = raw.get("nodes")
+    if not isinstance(nodes_raw, dict) or not nodes_raw:
+        problems.append(f"{label}: the graph has no nodes (add tables like [nodes.feed])")
+        raise GraphError(problems)
+
+    kinds = registry.kinds()
+    adapter = _config_adapter(kinds)
+    configs: dict[str, NodeConfig] = {}
+    for node_id, table in nodes_raw.items():
+        where = f"{label}: node '{node_id}'"
+        if not _ID.match(node_id):
+            problems.append(f"{where}: bad node id (use letters, digits, '_' or '-', "
+                            f"start with a letter, at most 64 characters)")
+            continue
+        if not isinstance(table, dict):
+            problems.append(f"{where}: must be a table of fields")
+            continue
+        use = table.get("use")
+        if use is None:
+            problems.append(f"{where}, field 'use': missing (name the node kind, see `streamq nodes`)")
+            continue
+        if not isinstance(use, str) or use not in kinds:
+            problems.append(f"{where}, field 'use': unknown node kind {use!r}; known kinds: "
+                            f"{', '.join(kinds)}")
+            continue
+        try:
+            configs[node_id] = adapter.validate_python(table)
+        except ValidationError as exc:
+            for err in exc.errors():
+                loc = [str(p) for p in err["loc"]]
+                if loc and loc[0] == use:  # discriminator tag in the location
+                    loc = loc[1:]
+                fld = ".".join(loc) or "?"
+                msg = err["msg"]
+                if err["type"] == "extra_forbidden":
+                    msg = f"unknown field for kind '{use}' (see `streamq nodes`)"
+                elif err["type"] == "missing":
+                    msg = "missing (required)"
+                problems.append(f"{where}, field '{fld}': {msg}")
+
+    nodes = {nid: kinds[cfg.use](nid, cfg) for nid, cfg in configs.items()}
+    # Wiring: every input names a node that exists and has an output.
+    all_ids = set(nodes_raw)
+    for nid, node in nodes.items():
+        for fld, ref in node.upstream().items():
+            if ref not in all_ids:
+                problems.append(f"{label}: node '{nid}', field '{fld}': no node named '{ref}'")
+            elif ref in nodes and nodes[ref].role == "sink":
+                problems.append(f"{label}: node '{nid}', field '{fld}': node '{ref}' "
+                                f"({nodes[ref].kind}) has no output to read")
+        for fld in node.inputs:
+            if fld not in node.optional_inputs and getattr(node.config, fld, None) is None:
+                if nid in configs:  # pydantic already reported it when required
+                    problems.append(f"{label}: node '{nid}', field '{fld}': missing (required)")
+    order, cycle = _topological_order(nodes)
+    if cycle:
+        first, before = cycle[0], cycle[-1]
+        fld = next((f for f, ref in nodes[first].upstream().items() if ref == before), "input")
+        problems.append(f"{label}: node '{first}', field '{fld}': cycle through nodes "
+                        + " -> ".join(f"'{c}'" for c in cycle + [first]))
+    if problems:
+        raise GraphError(problems)
+    return Graph(header=header, nodes=nodes, order=order, source=source, raw=raw)
+
+
+def _topological_order(nodes: dict[str, Node]) -> tuple[list[str], list[str]]:
+    """Kahn's algorithm in file order. Returns (order, cycle); cycle is [] when none."""
+    deps = {nid: {ref for ref in n.upstream().values() if ref in nodes} for nid, n in nodes.items()}
+    order: list[str] = []
+    done: set[str] = set()
+    pending = list(nodes)
+    while pending:
+        ready = [nid for nid in pending if deps[nid] <= done]
+        if not ready:
+            return order, _find_cycle(pending, deps)
+        for nid in ready:
+            order.append(nid)
+            done.add(nid)
+        pending = [nid for nid in pending if nid not in done]
+    return order, []
+
+
+def _find_cycle(pending: list[str], deps: dict[str, set[str]]) -> list[str]:
+    start = pending[0]
+    path: list[str] = []
+    seen: dict[str, int] = {}
+    node = start
+    while node not in seen:
+        seen[node] = len(path)
+        path.append(node)
+        node = sorted(d for d in deps[node] if d in pending)[0]
+    cyc = path[seen[node]:]
+    return list(reversed(cyc))

@@ -1,0 +1,254 @@
+"""Building a graph into a runnable chain, and running it offline.
+
+Offline runs read the sources in large steps (65,536 frames by default),
+whatever the graph's live block size: every node keeps its schedules in
+samples (DESIGN.md rule 1), so the step size cannot change any output.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import signal
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+from streamq.engine.blocks import Packet, StreamSpec
+from streamq.engine.graph import Graph, GraphError
+from streamq.engine.node import Node, RunContext, SourceNode
+from streamq.errors import StreamqError
+
+REPLAY_BLOCK = 65_536
+
+
+@dataclass
+class BuiltGraph:
+    graph: Graph
+    ctx: RunContext
+    specs: dict[str, StreamSpec | None]
+    sources: list[str]
+    length: int | None
+
+    @property
+    def nodes(self) -> dict[str, Node]:
+        return self.graph.nodes
+
+
+def infer_rate(graph: Graph) -> int:
+    """The graph's sample rate: the header's, else the file sources', else 48 kHz."""
+    if graph.header.sample_rate:
+        return graph.header.sample_rate
+    for node in graph.nodes.values():
+        rate = getattr(node, "natural_rate", None)
+        if callable(rate):
+            r = rate(graph)
+            if r:
+                return r
+    return 48_000
+
+
+def build(graph: Graph, out_dir: Path, *, live: bool = False,
+          offload: Callable[..., Any] | None = None, options: dict | None = None) -> BuiltGraph:
+    """Open every node in order; collect every problem before giving up."""
+    label = str(graph.source) if graph.source else "<graph>"
+    rate = infer_rate(graph)
+    ctx = RunContext(graph_file=graph.source, out_dir=Path(out_dir), sample_rate=rate,
+                     live=live, offload=offload, options=dict(options or {}))
+    specs: dict[str, StreamSpec | None] = {}
+    failed: set[str] = set()
+    problems: list[str] = []
+    for nid in graph.order:
+        node = graph.nodes[nid]
+        ups = node.upstream()
+        if any(ref in failed for ref in ups.values()):
+            failed.add(nid)
+            continue
+        if node.live_only and not live:
+            problems.append(f"{label}: node '{nid}': kind '{node.kind}' needs a live run")
+            failed.add(nid)
+            continue
+        node.ctx = ctx
+        try:
+            spec = node.open({f: specs[ref] for f, ref in ups.items()}, ctx)
+        except StreamqError as exc:
+            problems.append(f"{label}: {exc}")
+            failed.add(nid)
+            continue
+        node.spec = spec
+        specs[nid] = spec
+    if problems:
+        for nid in graph.order:
+            if nid in specs:
+                try:
+                    graph.nodes[nid].close(complete=False)
+                except Exception:
+                    pass
+        raise GraphError(problems)
+    sources = [nid for nid in graph.order if isinstance(graph.nodes[nid], SourceNode)]
+    if not sources:
+        raise GraphError([f"{label}: the graph has no source node"])
+    lengths = [graph.nodes[s].length for s in sources]
+    known = [n for n in lengths if n is not None]
+    length = min(known) if known else None
+    return BuiltGraph(graph, ctx, specs, sources, length)
+
+
+@dataclass
+class RunResult:
+    complete: bool
+    samples: int
+    seconds: float
+    report: dict[str, Any]
+    out_dir: Path
+    error: str | None = None
+
+
+class Interrupted(Exception):
+    """Raised inside the step loop when SIGINT/SIGTERM arrives."""
+
+
+def _step_all(built: BuiltGraph, frames: int) -> dict[str, Packet | None]:
+    outputs: dict[str, Packet | None] = {}
+    nodes = built.graph.nodes
+    for nid in built.graph.order:
+        node = nodes[nid]
+        ins = {f: outputs[ref] for f, ref in node.upstream().items()}
+        outputs[nid] = node.step(frames, ins)
+    return outputs
+
+
+def run_offline(built: BuiltGraph, *, block: int | None = None,
+                progress: Callable[[int, int | None], None] | None = None,
+                handle_signals: bool = True) -> RunResult:
+    """Run a built graph from its file/test sources to the end.
+
+    Parameters
+    ----------
+    block : frames per step (default 65,536); any value gives the same outputs.
+    progress : called as progress(done_frames, total_frames) after each step.
+    handle_signals : turn SIGINT/SIGTERM into a clean stop (report marked incomplete).
+    """
+    if built.length is None:
+        raise StreamqError("this graph has an endless source; run it live")
+    step = int(block or REPLAY_BLOCK)
+    total = built.length
+    pos = 0
+    complete = False
+    error: str | None = None
+    t0 = time.perf_counter()
+    old_handlers = {}
+
+    def on_signal(signum, frame):
+        raise Interrupted(signal.Signals(signum).name)
+
+    if handle_signals:
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            try:
+                old_handlers[sig] = signal.signal(sig, on_signal)
+            except ValueError:  # not the main thread
+                pass
+    try:
+        try:
+            while pos < total:
+                n = min(step, total - pos)
+                _step_all(built, n)
+                pos += n
+                if progress:
+                    progress(pos, total)
+            for nid in built.graph.order:
+                built.graph.nodes[nid].finish()
+            complete = True
+        except (Interrupted, KeyboardInterrupt):
+            error = "interrupted"
+        finally:
+            for sig, h in old_handlers.items():
+                signal.signal(sig, h)
+    finally:
+        closing_error = None
+        for nid in built.graph.order:
+            try:
+                built.graph.nodes[nid].close(complete)
+            except StreamqError as exc:
+                closing_error = closing_error or exc
+        if closing_error is not None and error is None:
+            raise closing_error
+    seconds = time.perf_counter() - t0
+    report = make_report(built, complete=complete, samples=pos, seconds=seconds)
+    write_report(built.ctx.out_dir, report)
+    return RunResult(complete, pos, seconds, report, built.ctx.out_dir, error)
+
+
+def make_report(built: BuiltGraph, *, complete: bool, samples: int, seconds: float,
+                extra: dict | None = None) -> dict[str, Any]:
+    rate = built.ctx.sample_rate
+    report: dict[str, Any] = {
+        "graph": built.graph.name,
+        "graph_file": str(built.graph.source) if built.graph.source else None,
+        "complete": complete,
+        "samples": samples,
+        "last_sample": samples,
+        "sample_rate": rate,
+        "audio_seconds": samples / rate,
+        "meters": {},
+        "outputs": {},
+        "nodes": {},
+    }
+    for nid in built.graph.order:
+        node = built.graph.nodes[nid]
+        r = node.report()
+        if r is None:
+            continue
+        if node.role == "meter":
+            report["meters"][nid] = r
+        elif node.role == "sink":
+            report["outputs"][nid] = r
+        else:
+            report["nodes"][nid] = r
+    if extra:
+        report.update(extra)
+    return report
+
+
+def _json_default(o):
+    import numpy as np
+    if isinstance(o, np.integer):
+        return int(o)
+    if isinstance(o, np.floating):
+        return float(o)
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(type(o).__name__)
+
+
+def _finite(o):
+    """JSON has no inf/nan: write them as null."""
+    if isinstance(o, float) and not math.isfinite(o):
+        return None
+    if isinstance(o, dict):
+        return {k: _finite(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_finite(v) for v in o]
+    return o
+
+
+def write_report(out_dir: Path, report: dict[str, Any]) -> Path:
+    """Write report.json atomically (temporary name, then rename)."""
+    out_dir = Path(out_dir)
+    path = out_dir / "report.json"
+    tmp = out_dir / ".report.json.tmp"
+    text = json.dumps(_finite(json.loads(json.dumps(report, default=_json_default))), indent=2)
+    try:
+        tmp.write_text(text + "\n", encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as exc:
+        try:
+            tmp.unlink()
+        except OSError:
+            pass
+        raise StreamqError(f"{path}: cannot write report: {exc.strerror or exc}") from None
+    return path

@@ -1,0 +1,122 @@
+"""Invented test scenes, generated deterministically sample by sample.
+
+Every scene is a function of the absolute sample index and the seed: the
+samples of ``[start, stop)`` are the same whichever way the range is cut into
+blocks. Noise is made in fixed chunks, each seeded from ``(seed, chunk)``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import signal as sps
+
+CHUNK = 8192
+SCENES = ("tone", "noise", "drift")
+
+
+def _chunk_rng(seed: int, channel: int, chunk: int, stream: int) -> np.random.Generator:
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence([seed, channel, chunk, stream])))
+
+
+def _noise(seed: int, channel: int, start: int, stop: int, pdf: str, stream: int = 0) -> np.ndarray:
+    """Unit-variance noise with the given amplitude PDF for samples [start, stop)."""
+    out = np.empty(stop - start)
+    c0, c1 = start // CHUNK, (stop - 1) // CHUNK
+    pos = 0
+    for c in range(c0, c1 + 1):
+        rng = _chunk_rng(seed, channel, c, stream)
+        if pdf == "gaussian":
+            chunk = rng.standard_normal(CHUNK)
+        elif pdf == "laplacian":
+            chunk = rng.laplace(0.0, 1.0 / np.sqrt(2.0), CHUNK)
+        elif pdf == "uniform":
+            chunk = rng.uniform(-np.sqrt(3.0), np.sqrt(3.0), CHUNK)
+        else:
+            raise ValueError(pdf)
+        a = max(start, c * CHUNK) - c * CHUNK
+        b = min(stop, (c + 1) * CHUNK) - c * CHUNK
+        out[pos:pos + b - a] = chunk[a:b]
+        pos += b - a
+    return out
+
+
+def _filtered_noise(seed: int, channel: int, start: int, stop: int, taps: np.ndarray,
+                    stream: int) -> np.ndarray:
+    """Gaussian noise through an FIR filter; the filter's history comes from the
+    same deterministic noise, so the result does not depend on block cuts."""
+    pad = len(taps) - 1
+    raw = _noise(seed, channel, max(0, start - pad), stop, "gaussian", stream)
+    if start - pad < 0:
+        raw = np.concatenate([np.zeros(pad - start), raw])
+    return np.convolve(raw, taps, mode="valid")
+
+
+def _db(level_dbfs: float) -> float:
+    return 10.0 ** (level_dbfs / 20.0)
+
+
+def tone(t: np.ndarray, frequency: float, level_dbfs: float) -> np.ndarray:
+    """A sine whose peak is at ``level_dbfs`` (0 dBFS = full scale)."""
+    return _db(level_dbfs) * np.sin(2.0 * np.pi * frequency * t)
+
+
+def drift_scene(seed: int, channel: int, start: int, stop: int, rate: int, total: int) -> np.ndarray:
+    """Quiet room tone, then speech-like bursts, then dense loud band material.
+
+    An invented three-part program: the first third is low hiss with mains hum
+    around -62 dBFS RMS; the middle third is syllable-like bursts of shaped
+    noise (peaky, near-Laplacian amplitudes) around -24 dBFS RMS; the last
+    third is a dense chord of harmonic tones plus noise around -12 dBFS RMS.
+    Parts cross-fade over 0.25 s.
+    """
+    n = np.arange(start, stop)
+    t = n / rate
+    third = total / 3.0
+    fade = 0.25 * rate
+
+    def weight(center_lo: float, center_hi: float) -> np.ndarray:
+        up = np.clip((n - center_lo) / fade + 0.5, 0.0, 1.0) if center_lo > 0 else np.ones(len(n))
+        down = np.clip((center_hi - n) / fade + 0.5, 0.0, 1.0) if center_hi < total else np.ones(len(n))
+        return np.minimum(up, down)
+
+    # Part 1: room tone: filtered hiss plus 50 Hz hum and its 3rd harmonic.
+    lp = sps.firwin(31, 0.25)
+    room = 0.0008 * _filtered_noise(seed, channel, start, stop, lp, 1) / np.sqrt(np.sum(lp ** 2))
+    room += tone(t, 50.0, -66.0) + tone(t, 150.0, -74.0)
+
+    # Part 2: speech-like bursts: band-passed noise under a 4-5 Hz syllable
+    # envelope with pauses, giving a peaky amplitude distribution.
+    bp = sps.firwin(63, [0.012, 0.16], pass_zero=False)
+    voiced = _filtered_noise(seed, channel, start, stop, bp, 2) / np.sqrt(np.sum(bp ** 2))
+    syll = np.maximum(0.0, np.sin(2 * np.pi * 4.3 * t + 0.7 * np.sin(2 * np.pi * 0.37 * t))) ** 2
+    phrase = (np.sin(2 * np.pi * 0.31 * t + channel) > -0.35).astype(float)
+    pitch = 0.5 * tone(t, 140.0 + 20.0 * np.sin(2 * np.pi * 0.5 * t), 0.0)
+    speech = 0.16 * syll * phrase * (voiced + pitch)
+
+    # Part 3: band: a major chord with harmonics, slow tremolo, and a noise bed.
+    band = np.zeros(len(n))
+    for f0 in (110.0, 138.6, 164.8, 220.0):
+        for h, a in ((1, 1.0), (2, 0.5), (3, 0.33), (5, 0.2)):
+            band += a * np.sin(2 * np.pi * f0 * h * t + f0 * 0.01 * h)
+    band *= 0.045 * (1.0 + 0.3 * np.sin(2 * np.pi * 1.7 * t))
+    band += 0.05 * _noise(seed, channel, start, stop, "laplacian", 3)
+
+    out = room * weight(0, third) + speech * weight(third, 2 * third) + band * weight(2 * third, total)
+    return np.clip(out, -1.0, 1.0 - 2.0 ** -15)
+
+
+def render(scene: str, *, seed: int, channel: int, start: int, stop: int, rate: int, total: int,
+           frequency: float, level_dbfs: float, pdf: str) -> np.ndarray:
+    """Samples [start, stop) of one channel of a scene, float64."""
+    if stop <= start:
+        return np.zeros(0)
+    if scene == "tone":
+        t = np.arange(start, stop) / rate
+        return tone(t, frequency * (1.0 + 0.001 * channel), level_dbfs)
+    if scene == "noise":
+        # level_dbfs is the RMS level here; clip to full scale.
+        x = _db(level_dbfs) * _noise(seed, channel, start, stop, pdf)
+        return np.clip(x, -1.0, 1.0 - 2.0 ** -15)
+    if scene == "drift":
+        return drift_scene(seed, channel, start, stop, rate, total)
+    raise ValueError(scene)

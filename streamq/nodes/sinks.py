@@ -1,0 +1,61 @@
+"""Sink nodes: audio files."""
+
+from __future__ import annotations
+
+from typing import Literal
+
+from pydantic import Field
+
+from streamq.engine.audiofile import SafeWriter
+from streamq.engine.node import Node, NodeConfig
+from streamq.engine.registry import register
+
+
+class FileSinkConfig(NodeConfig):
+    use: Literal["file-sink"]
+    input: str = Field(description="node whose signal is written")
+    path: str = Field(min_length=1, description="output file; relative paths land in the run's "
+                                                 "output folder; format from the extension")
+    subtype: str | None = Field(None, description="libsndfile subtype (PCM_16, PCM_24, FLOAT, "
+                                                  "DOUBLE, ...); default: the format's usual one")
+
+
+@register
+class FileSink(Node):
+    """Writes a signal to an audio file (any format libsndfile writes), safely."""
+
+    kind = "file-sink"
+    Config = FileSinkConfig
+    inputs = ("input",)
+    role = "sink"
+
+    def __init__(self, node_id, config):
+        super().__init__(node_id, config)
+        self.writer: SafeWriter | None = None
+        self.latency = 0
+
+    def open(self, specs, ctx):
+        spec = specs["input"]
+        if spec.kind != "signal":
+            raise self.fail("input", f"node '{self.config.input}' gives quantizer indices; "
+                                     f"put a decoder before a file-sink (or use an index-sink)")
+        path = ctx.resolve_path(self.config.path)
+        self.latency = spec.latency
+        self.writer = SafeWriter(path, spec.rate, spec.channels, self.config.subtype,
+                                 lambda m: self.fail("path", m))
+        return None
+
+    def step(self, frames, inputs):
+        self.writer.write(inputs["input"].block.data)
+        return None
+
+    def close(self, complete):
+        if self.writer is not None:
+            self.writer.close()
+
+    def report(self):
+        if self.writer is None:
+            return None
+        return {"path": str(self.writer.path), "frames": self.writer.frames,
+                "subtype": self.writer.subtype, "clipped_samples": self.writer.clipped,
+                "latency_frames": self.latency}

@@ -1,0 +1,105 @@
+"""`streamq run`: load, build and run a graph, then print a short summary."""
+
+from __future__ import annotations
+
+import re
+import sys
+import time
+from pathlib import Path
+
+from streamq.engine.graph import Graph, load_graph
+from streamq.engine.scheduler import RunResult, build, run_offline
+from streamq.errors import StreamqError
+
+EXIT_OK, EXIT_INTERRUPTED = 0, 130
+
+
+def default_out_dir(graph: Graph) -> Path:
+    safe = re.sub(r"[^A-Za-z0-9_.-]+", "-", graph.name).strip("-.") or "graph"
+    return Path("streamq-out") / safe
+
+
+def prepare_out_dir(out: Path) -> Path:
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise StreamqError(f"{out}: cannot create the output folder ({exc.strerror or exc})") from None
+    probe = out / ".streamq-write-test"
+    try:
+        probe.write_bytes(b"")
+        probe.unlink()
+    except OSError as exc:
+        raise StreamqError(f"{out}: output folder is not writable ({exc.strerror or exc})") from None
+    return out
+
+
+class Progress:
+    """A progress bar (tqdm) showing audio position, speed as a multiple of
+    real time and time left. It appears only after two seconds, and not at
+    all when quiet or when stderr is not a terminal."""
+
+    def __init__(self, total_frames: int, rate: int, quiet: bool, label: str):
+        self.rate = rate
+        self.bar = None
+        self.t0 = time.perf_counter()
+        if quiet or not sys.stderr.isatty():
+            return
+        from tqdm import tqdm
+        self.bar = tqdm(total=round(total_frames / rate, 1), desc=label, delay=2.0, leave=False,
+                        unit="s", dynamic_ncols=True,
+                        bar_format="{desc}: {percentage:3.0f}%|{bar}| {n:.1f}/{total:.1f} s audio"
+                                   " {postfix} [{remaining} left]")
+
+    def __call__(self, done: int, total: int | None) -> None:
+        if self.bar is None:
+            return
+        elapsed = max(time.perf_counter() - self.t0, 1e-9)
+        self.bar.set_postfix_str(f"{done / self.rate / elapsed:,.0f}x real time", refresh=False)
+        self.bar.update(round(done / self.rate, 1) - self.bar.n)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+def summary_lines(result: RunResult) -> list[str]:
+    rep = result.report
+    audio = rep["audio_seconds"]
+    speed = audio / result.seconds if result.seconds > 0 else float("inf")
+    state = "done" if result.complete else f"stopped early at sample {rep['last_sample']}"
+    lines = [f"{rep['graph']}: {state}: {audio:.2f} s of audio in {result.seconds:.2f} s "
+             f"({speed:,.0f}x real time); output in {result.out_dir}/"]
+    for nid, m in rep.get("meters", {}).items():
+        def f(key, fmt="{:.2f}"):
+            v = m.get(key)
+            return "n/a" if v is None else fmt.format(v)
+        lines.append(f"  {nid}: SNR {f('snr_db')} dB, segmental SNR {f('segsnr_db')} dB, "
+                     f"{f('bits_per_sample', '{:.3f}')} bits/sample "
+                     f"(side info {f('side_info_bits_per_sample', '{:.4f}')}), "
+                     f"{m.get('codebook_updates', 0)} codebook updates")
+    for nid, o in rep.get("outputs", {}).items():
+        if "path" in o:
+            lines.append(f"  {nid}: wrote {o['path']} ({o.get('frames', 0)} frames)")
+    return lines
+
+
+def run_graph_file(args) -> int:
+    graph = load_graph(args.graph, args.overrides)
+    out = prepare_out_dir(Path(args.out) if args.out else default_out_dir(graph))
+    if any(n.live_only for n in graph.nodes.values()):
+        from streamq.live.runner import run_live
+        return run_live(graph, out, args)
+    built = build(graph, out)
+    bar = Progress(built.length, built.ctx.sample_rate, getattr(args, "quiet", False), graph.name)
+    try:
+        result = run_offline(built, block=args.block, progress=bar)
+    finally:
+        bar.close()
+    if not getattr(args, "quiet", False) or not result.complete:
+        for line in summary_lines(result):
+            print(line)
+    if not result.complete:
+        print(f"streamq: interrupted at sample {result.samples}; outputs so far are closed and "
+              f"valid, report marked incomplete", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    return EXIT_OK

@@ -106,8 +106,15 @@ class RunResult:
     error: str | None = None
 
 
-class Interrupted(Exception):
-    """Raised inside the step loop when SIGINT/SIGTERM arrives."""
+class Interrupted(BaseException):
+    """Stops the step loop after SIGINT/SIGTERM.
+
+    The first signal only sets a flag: the loop stops at the next step
+    boundary, so every node has handled the same frames and the files and the
+    report agree. A second signal raises at once. Like KeyboardInterrupt it
+    derives from BaseException, so a node's ``except Exception`` (e.g. the
+    file writer's clean-up on write errors) cannot mistake it for a failure.
+    """
 
 
 def _step_all(built: BuiltGraph, frames: int) -> dict[str, Packet | None]:
@@ -140,9 +147,13 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
     error: str | None = None
     t0 = time.perf_counter()
     old_handlers = {}
+    stop_requested: list[str] = []
 
     def on_signal(signum, frame):
-        raise Interrupted(signal.Signals(signum).name)
+        name = signal.Signals(signum).name
+        if stop_requested:  # asked twice: stop right now
+            raise Interrupted(name)
+        stop_requested.append(name)
 
     if handle_signals:
         for sig in (signal.SIGINT, signal.SIGTERM):
@@ -153,6 +164,8 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
     try:
         try:
             while pos < total:
+                if stop_requested:
+                    raise Interrupted(stop_requested[0])
                 n = min(step, total - pos)
                 _step_all(built, n)
                 pos += n

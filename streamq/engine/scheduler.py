@@ -140,7 +140,7 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
     """
     if built.length is None:
         raise StreamqError("this graph has an endless source; run it live")
-    step = int(block or REPLAY_BLOCK)
+    step = REPLAY_BLOCK if block is None else int(block)
     total = built.length
     pos = 0
     complete = False
@@ -163,6 +163,8 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
                 pass
     try:
         try:
+            if step < 1:  # inside the try, so the opened nodes get closed
+                raise StreamqError(f"block size must be at least 1 frame, got {block}")
             while pos < total:
                 if stop_requested:
                     raise Interrupted(stop_requested[0])

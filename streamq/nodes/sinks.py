@@ -51,7 +51,13 @@ class FileSink(Node):
 
     def close(self, complete):
         if self.writer is not None:
-            self.writer.close()
+            if complete or self.writer.frames:
+                self.writer.close()
+            else:
+                # Nothing was written (`streamq check`, a failed build, a stop
+                # before the first step): leave no file, and do not replace
+                # one that is already there with an empty one.
+                self.writer.discard()
 
     def report(self):
         if self.writer is None:

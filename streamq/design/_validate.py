@@ -1,0 +1,70 @@
+"""Input checks shared by the design functions.
+
+Every check raises :class:`streamq.errors.StreamqError` with a one-line
+message that names the argument at fault, so that bad input never turns into
+a silent NaN further down.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from streamq.errors import StreamqError
+
+#: Smallest and largest number of reconstruction levels a codebook may have.
+MIN_LEVELS = 2
+MAX_LEVELS = 65536
+
+
+def check_levels(levels, name: str = "levels") -> int:
+    """Return ``levels`` as an int after checking 2 <= levels <= 65536."""
+    if isinstance(levels, bool) or not isinstance(levels, (int, np.integer, float, np.floating)):
+        raise StreamqError(f"{name} must be an integer, got {levels!r}")
+    if isinstance(levels, (float, np.floating)) and not float(levels).is_integer():
+        raise StreamqError(f"{name} must be an integer, got {levels!r}")
+    count = int(levels)
+    if count < MIN_LEVELS or count > MAX_LEVELS:
+        raise StreamqError(
+            f"{name} must be between {MIN_LEVELS} and {MAX_LEVELS}, got {count}"
+        )
+    return count
+
+
+def finite_array(values, name: str, *, allow_empty: bool = False) -> np.ndarray:
+    """Return ``values`` as a 1-D float64 array, rejecting NaN, inf and empty input."""
+    try:
+        arr = np.asarray(values, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise StreamqError(f"{name} must be numeric") from None
+    arr = arr.reshape(-1)
+    if arr.size == 0 and not allow_empty:
+        raise StreamqError(f"{name} is empty")
+    if not np.isfinite(arr).all():
+        bad = int(np.flatnonzero(~np.isfinite(arr))[0])
+        raise StreamqError(
+            f"{name} has a non-finite value ({arr[bad]!r}) at position {bad}"
+        )
+    return arr
+
+
+def histogram_arrays(centers, weights):
+    """Check a histogram (bin centers, weights) and return float64 copies.
+
+    Centers must be finite and non-decreasing, weights finite and
+    non-negative with a positive total, and both of the same length.
+    """
+    c = finite_array(centers, "centers")
+    w = finite_array(weights, "weights")
+    if c.shape != w.shape:
+        raise StreamqError(
+            f"centers and weights differ in length ({c.size} and {w.size})"
+        )
+    if c.size > 1 and np.any(c[1:] < c[:-1]):
+        bad = int(np.flatnonzero(c[1:] < c[:-1])[0]) + 1
+        raise StreamqError(f"centers must be sorted ascending; position {bad} is not")
+    if np.any(w < 0):
+        bad = int(np.flatnonzero(w < 0)[0])
+        raise StreamqError(f"weights must be non-negative; position {bad} is {w[bad]!r}")
+    if not w.sum() > 0:
+        raise StreamqError("weights sum to zero: the histogram is empty")
+    return c, w

@@ -13,7 +13,7 @@ from __future__ import annotations
 import importlib
 from importlib.metadata import entry_points
 
-from streamq.engine.node import Node
+from streamq.engine.node import Node, SourceNode
 from streamq.errors import StreamqError
 
 ENTRY_POINT_GROUP = "streamq.nodes"
@@ -63,7 +63,7 @@ class Registry:
             except Exception as exc:  # a broken plugin must not take the tool down
                 raise StreamqError(
                     f"node plugin '{ep.name}' ({ep.value}) failed to load: {exc}") from None
-            if not (isinstance(cls, type) and issubclass(cls, Node)):
+            if not (isinstance(cls, type) and issubclass(cls, Node)) or cls in (Node, SourceNode):
                 raise StreamqError(
                     f"node plugin '{ep.name}' ({ep.value}) is not a streamq Node class")
             if not cls.kind:

@@ -1,0 +1,137 @@
+"""Shared helpers for the engine, file, CLI and plugin tests.
+
+Nothing here is autouse: other test modules are not affected by importing it.
+Every helper works on real files in pytest's tmp_path (soundfile/libsndfile),
+and the command line is run as a real subprocess.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+import pytest
+import soundfile as sf
+from pydantic import Field
+
+from streamq.engine.blocks import Packet, SignalBlock, StreamSpec
+from streamq.engine.graph import load_graph
+from streamq.engine.node import Duration, Node, NodeConfig
+from streamq.engine.registry import Registry, registry
+from streamq.engine.scheduler import RunResult, build, run_offline
+
+REPO = Path(__file__).resolve().parents[1]
+DEMO = REPO / "graphs" / "demo.toml"
+
+
+# -- graphs and runs ----------------------------------------------------------------
+
+def write_graph(folder: Path, text: str, name: str = "g.toml") -> Path:
+    """Write a graph file (dedented) into ``folder`` and return its path."""
+    path = Path(folder) / name
+    path.write_text(textwrap.dedent(text).lstrip(), encoding="utf-8")
+    return path
+
+
+def run_file(graph_path: Path, out_dir: Path, block: int | None = None,
+             overrides: list[str] = ()) -> RunResult:
+    """Load, build and run a graph file offline through the scheduler API."""
+    graph = load_graph(graph_path, list(overrides))
+    out_dir.mkdir(parents=True, exist_ok=True)
+    return run_offline(build(graph, out_dir), block=block, handle_signals=False)
+
+
+def read_audio(path: Path) -> tuple[np.ndarray, int]:
+    """Samples as float64 (frames, channels) and the sample rate."""
+    data, rate = sf.read(str(path), dtype="float64", always_2d=True)
+    return data, rate
+
+
+# -- audio files --------------------------------------------------------------------
+
+def make_audio(path: Path, frames: int, channels: int, rate: int = 48_000,
+               subtype: str = "PCM_24", fmt: str | None = None, seed: int = 7) -> np.ndarray:
+    """Write an invented test recording (a different tone plus noise per channel)
+    and return the samples as read back from the file (float64)."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(frames)[:, None] / rate
+    freqs = 220.0 * (1.0 + np.arange(channels))[None, :]
+    x = 0.4 * np.sin(2 * np.pi * freqs * t) + 0.05 * rng.standard_normal((frames, channels))
+    sf.write(str(path), np.clip(x, -0.99, 0.99), rate, subtype=subtype, format=fmt)
+    return read_audio(path)[0]
+
+
+# -- the command line ---------------------------------------------------------------
+
+def cli(*args: str | Path, cwd: Path | None = None, env: dict | None = None,
+        timeout: float = 120, **kw) -> subprocess.CompletedProcess:
+    """Run ``python -m streamq.cli ARGS`` with this interpreter; capture text output."""
+    full_env = dict(os.environ)
+    full_env.pop("PYTHONPATH", None)
+    full_env.update(env or {})
+    return subprocess.run([sys.executable, "-m", "streamq.cli", *map(str, args)],
+                          cwd=cwd, env=full_env, capture_output=True, text=True,
+                          timeout=timeout, stdin=subprocess.DEVNULL, **kw)
+
+
+def error_lines(stderr: str) -> list[str]:
+    """The non-empty lines of stderr."""
+    return [line for line in stderr.splitlines() if line.strip()]
+
+
+def assert_names(line: str, *parts: str) -> None:
+    """A one-line message names every one of ``parts`` (file, node, field ...)."""
+    assert "\n" not in line, line
+    for part in parts:
+        assert part in line, f"{part!r} not named in: {line}"
+
+
+# -- test-only node kinds (never registered in the global registry) -----------------
+
+class GainConfig(NodeConfig):
+    use: Literal["test-gain"]
+    input: str = Field(description="node whose signal is scaled")
+    factor: float = Field(1.0, description="gain")
+    hold: Duration | None = Field(None, description="unused; a field of the Duration type")
+
+
+class Gain(Node):
+    """Test-only node kind: scales a signal (gives an input and an output, for wiring tests)."""
+
+    kind = "test-gain"
+    Config = GainConfig
+    inputs = ("input",)
+
+    def open(self, specs, ctx):
+        spec = specs["input"]
+        if self.config.hold is not None:
+            self.hold_samples = self.config.hold.samples(ctx.sample_rate)
+        return StreamSpec("signal", spec.rate, spec.channels, spec.latency, None, spec.frames)
+
+    def step(self, frames, inputs):
+        b = inputs["input"].block
+        return Packet(SignalBlock(b.data * self.config.factor, b.start, b.rate))
+
+
+def registry_with(*extra: type[Node]) -> Registry:
+    """A fresh registry holding every built-in kind plus ``extra``."""
+    reg = Registry()
+    for cls in registry.kinds().values():
+        reg.add(cls)
+    for cls in extra:
+        reg.add(cls)
+    return reg
+
+
+@pytest.fixture
+def gain_kind(monkeypatch):
+    """Make the test-only 'test-gain' kind visible to graph validation."""
+    import streamq.engine.graph as graph_mod
+    monkeypatch.setattr(graph_mod, "registry", registry_with(Gain))
+    return Gain
+

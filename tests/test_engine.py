@@ -1,0 +1,197 @@
+"""The offline scheduler: block-size invariance (DESIGN.md rule 1), run results and reports.
+
+Every run here goes through the real scheduler (parse/load, build, run_offline)
+and real files written and read back with libsndfile.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from conftest import cli, make_audio, read_audio, run_file, write_graph
+from streamq.engine.graph import parse_graph
+from streamq.engine.scheduler import REPLAY_BLOCK, build, run_offline
+from streamq.errors import StreamqError
+from streamq.nodes import scenes
+
+BLOCKS = (7, 256, 65_536)
+
+
+def _drift_graph(seconds: float, rate: int = 8000, subtype: str = "DOUBLE") -> str:
+    return f"""
+        [graph]
+        name = "drift-check"
+        sample_rate = {rate}
+
+        [nodes.feed]
+        use = "test-signal"
+        scene = "drift"
+        seconds = {seconds}
+        channels = 2
+
+        [nodes.keep]
+        use = "file-sink"
+        input = "feed"
+        path = "out.wav"
+        subtype = "{subtype}"
+    """
+
+
+def _file_graph(source: str) -> str:
+    return f"""
+        [graph]
+        name = "file-check"
+
+        [nodes.src]
+        use = "file-source"
+        path = "{source}"
+
+        [nodes.keep]
+        use = "file-sink"
+        input = "src"
+        path = "out.wav"
+        subtype = "PCM_24"
+    """
+
+
+def _runs(tmp_path, graph_text, blocks):
+    """Run one graph once per block size; return {block: (samples, bytes, report)}."""
+    g = write_graph(tmp_path, graph_text)
+    out = {}
+    for block in blocks:
+        d = tmp_path / f"b{block}"
+        result = run_file(g, d, block=block)
+        assert result.complete
+        data, _ = read_audio(d / "out.wav")
+        out[block] = (data, (d / "out.wav").read_bytes(), result)
+    return out
+
+
+def _assert_identical(runs):
+    blocks = list(runs)
+    ref_data, ref_bytes, ref_result = runs[blocks[0]]
+    for b in blocks[1:]:
+        data, raw, result = runs[b]
+        assert data.shape == ref_data.shape, f"block {b}"
+        # Bit-identical: compare the float64 arrays exactly, and the file bytes.
+        assert np.array_equal(data, ref_data), f"block {b} differs from block {blocks[0]}"
+        assert raw == ref_bytes, f"block {b}: file bytes differ"
+        assert result.samples == ref_result.samples
+
+
+def test_drift_scene_is_block_size_invariant(tmp_path):
+    runs = _runs(tmp_path, _drift_graph(2.0), BLOCKS)
+    _assert_identical(runs)
+    data = runs[65_536][0]
+    assert data.shape == (16_000, 2)  # crosses the noise chunks (8,192 frames)
+    # The two channels differ (the scene gives each its own noise) and nothing is silent.
+    assert not np.array_equal(data[:, 0], data[:, 1])
+    assert np.abs(data).max() > 0.1
+
+
+def test_drift_scene_in_blocks_of_one_frame(tmp_path):
+    # Blocks of one frame are slow: a short program (0.2 s at 8 kHz = 1,600 frames).
+    runs = _runs(tmp_path, _drift_graph(0.2), (1, 65_536))
+    _assert_identical(runs)
+    assert runs[1][0].shape == (1600, 2)
+
+
+def test_scene_equals_one_piece_rendering(tmp_path):
+    # The scene is a function of the absolute sample index: the file written in
+    # blocks of 100 equals the whole range rendered in one call.
+    g = write_graph(tmp_path, _drift_graph(1.5))
+    run_file(g, tmp_path / "o", block=100)
+    data, _ = read_audio(tmp_path / "o" / "out.wav")
+    total = 12_000
+    for ch in range(2):
+        whole = scenes.render("drift", seed=1, channel=ch, start=0, stop=total, rate=8000,
+                              total=total, frequency=1000.0, level_dbfs=-20.0, pdf="gaussian")
+        assert np.array_equal(data[:, ch], whole)
+
+
+@pytest.mark.parametrize("scene", ["noise", "tone"])
+def test_other_scenes_are_block_size_invariant(tmp_path, scene):
+    # 20,000 frames cross the noise generator's 8,192-frame chunks several times.
+    text = f"""
+        [graph]
+        sample_rate = 10000
+        [nodes.feed]
+        use = "test-signal"
+        scene = "{scene}"
+        pdf = "laplacian"
+        seconds = 2
+        channels = 2
+        bits = 16
+        [nodes.keep]
+        use = "file-sink"
+        input = "feed"
+        path = "out.wav"
+        subtype = "PCM_16"
+    """
+    _assert_identical(_runs(tmp_path, text, (7, 8192, 65_536)))
+
+
+def test_file_graph_is_block_size_invariant(tmp_path):
+    src = tmp_path / "take.wav"
+    original = make_audio(src, frames=12_345, channels=2, rate=44_100, subtype="PCM_24")
+    runs = _runs(tmp_path, _file_graph(str(src)), (1, 7, 256, 65_536))
+    _assert_identical(runs)
+    data = runs[1][0]
+    # PCM_24 in, PCM_24 out: the samples pass through unchanged, at the file's own rate.
+    assert np.array_equal(data, original)
+    assert read_audio(tmp_path / "b1" / "out.wav")[1] == 44_100
+
+
+def test_block_option_of_the_cli_gives_identical_files(tmp_path):
+    g = write_graph(tmp_path, _drift_graph(0.5, subtype="PCM_24"))
+    outs = []
+    for block in ("7", None):
+        d = tmp_path / f"cli-{block}"
+        args = ["run", g, "--out", d, "--quiet"] + (["--block", block] if block else [])
+        proc = cli(*args)
+        assert proc.returncode == 0, proc.stderr
+        outs.append(d / "out.wav")
+    assert outs[0].read_bytes() == outs[1].read_bytes()
+    api = tmp_path / "api"
+    run_file(g, api, block=256)
+    assert np.array_equal(read_audio(outs[0])[0], read_audio(api / "out.wav")[0])
+
+
+# -- run results and report.json ------------------------------------------------------
+
+def test_report_of_a_complete_run(tmp_path):
+    g = write_graph(tmp_path, _drift_graph(0.5))
+    result = run_file(g, tmp_path / "o", block=1000)
+    assert result.complete and result.samples == 4000 and result.error is None
+    report = json.loads((tmp_path / "o" / "report.json").read_text())
+    assert report["complete"] is True
+    assert report["samples"] == 4000
+    assert report["sample_rate"] == 8000
+    assert report["audio_seconds"] == pytest.approx(0.5)
+    assert report["outputs"]["keep"]["frames"] == 4000
+    assert report["outputs"]["keep"]["path"] == str(tmp_path / "o" / "out.wav")
+    assert not list((tmp_path / "o").glob(".*")), "temporary files left behind"
+
+
+def test_default_step_is_the_replay_block(tmp_path):
+    # 2.5 s at 48 kHz = 120,000 frames: one full step of 65,536 and one short one.
+    g = write_graph(tmp_path, _drift_graph(2.5, rate=48_000, subtype="PCM_16"))
+    seen = []
+    built = build(parse_graph(g.read_text(), g), tmp_path / "o")
+    run_offline(built, progress=lambda done, total: seen.append((done, total)),
+                handle_signals=False)
+    assert seen == [(REPLAY_BLOCK, 120_000), (120_000, 120_000)]
+
+
+@pytest.mark.parametrize("block", [0, -5])
+def test_block_below_one_frame_is_refused(tmp_path, block):
+    g = write_graph(tmp_path, _drift_graph(0.1))
+    built = build(parse_graph(g.read_text(), g), tmp_path / "o")
+    with pytest.raises(StreamqError, match="block size must be at least 1 frame"):
+        run_offline(built, block=block, handle_signals=False)
+    # The nodes were closed: no temporary or empty output is left behind.
+    assert sorted(p.name for p in (tmp_path / "o").iterdir()) == []
+

@@ -83,6 +83,18 @@ def summary_lines(result: RunResult) -> list[str]:
     return lines
 
 
+def write_report_pages(result: RunResult) -> list[Path]:
+    """Plots and report.html after a run (complete or not). A failure here only
+    warns: report.json is already on disk and stays as it is."""
+    try:
+        from streamq.report import write_report_files
+        return write_report_files(result.out_dir, result.report)
+    except Exception as exc:
+        msg = " ".join(str(exc).split()) or type(exc).__name__
+        print(f"streamq: warning: plots and report.html not written ({msg[:200]})", file=sys.stderr)
+        return []
+
+
 def run_graph_file(args) -> int:
     graph = load_graph(args.graph, args.overrides)
     out = prepare_out_dir(Path(args.out) if args.out else default_out_dir(graph))
@@ -98,6 +110,10 @@ def run_graph_file(args) -> int:
     if not getattr(args, "quiet", False) or not result.complete:
         for line in summary_lines(result):
             print(line)
+    written = write_report_pages(result)
+    if written and not getattr(args, "quiet", False):
+        print(f"  report: {written[-1]}" if written[-1].suffix == ".html" else
+              f"  plots: {len(written)} files")
     if not result.complete:
         print(f"streamq: interrupted at sample {result.samples}; outputs so far are closed and "
               f"valid, report marked incomplete", file=sys.stderr)

@@ -15,7 +15,9 @@ test_indexfile.py).
 
 from __future__ import annotations
 
+import atexit
 import os
+import shutil
 import sys
 import tempfile
 from pathlib import Path
@@ -35,6 +37,7 @@ import test_indexfile as helpers  # noqa: E402
 
 _WORK = Path(tempfile.mkdtemp(prefix="streamq-atheris-"))
 _FILE = _WORK / "input.sqi"
+atexit.register(shutil.rmtree, _WORK, True)
 
 
 def test_one_input(data: bytes) -> None:

@@ -11,9 +11,11 @@ longer run, e.g. ``STREAMQ_FUZZ_EXAMPLES=100000 pytest tests/test_indexfile.py -
 
 from __future__ import annotations
 
+import atexit
 import json
 import os
 import re
+import shutil
 import struct
 import tempfile
 import zlib
@@ -923,6 +925,7 @@ def exercise(path: Path, sizes) -> None:
 
 FUZZ_EXAMPLES = int(os.environ.get("STREAMQ_FUZZ_EXAMPLES", "2500"))
 _FUZZ_DIR = tempfile.mkdtemp(prefix="streamq-fuzz-")
+atexit.register(shutil.rmtree, _FUZZ_DIR, True)
 
 
 def test_seed_file_is_valid():

@@ -1,0 +1,57 @@
+"""`streamq batch`: one graph over many recordings, one result table.
+
+The graph's batch-input file-source (``[graph] batch_input``, or the graph's
+only file-source) is bound to each input file in turn; each file runs into
+its own folder under ``OUT/files/`` (report.json and the graph's outputs);
+``OUT/summary.csv``, ``OUT/summary.json`` and ``OUT/summary.png`` gather the
+results. Files run on a local process pool (all cores by default) or on a
+Dask cluster (``--cluster``); a re-run skips the files already done.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+HELP_EPILOG = """\
+inputs: a folder (audio files below it, by extension), a glob pattern in quotes ('shows/**/*.flac'),
+an audio file, or a text file listing one path per line; --inputs may be repeated.
+
+Each file runs into OUT/files/<name>-<hash>/ (report.json, batch.json, the graph's outputs);
+OUT/summary.csv, OUT/summary.json and OUT/summary.png gather them. A re-run skips files whose
+report is complete and whose input (size, modification time) and graph setup are unchanged.
+
+--cluster tcp://HOST:PORT runs on a Dask scheduler there (its workers must see the graph, the
+inputs and OUT at the same paths, and have streamq installed); --cluster local:N starts N local
+Dask workers. Needs the optional extra: pip install 'streamq[cluster]'.
+
+exit status: 0 every file done, 1 some files failed (listed, and in the summary), 2 bad graph or
+options, 130 stopped by Ctrl-C (files finished so far are kept; run again to continue).
+"""
+
+
+def add_parser(subparsers) -> argparse.ArgumentParser:
+    p = subparsers.add_parser(
+        "batch", help="run a graph over many files (all cores, or a Dask cluster)",
+        description="Run one graph over many recordings and gather one result table.",
+        epilog=HELP_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("graph", help="graph file (TOML) with a file-source to bind each input to")
+    p.add_argument("--inputs", action="append", required=True, metavar="GLOB|FOLDER|LIST",
+                   help="files to run over (repeatable)")
+    p.add_argument("--out", type=Path, required=True, metavar="DIR",
+                   help="output folder (per-file folders and the summary)")
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="local worker processes (default: the number of CPUs)")
+    p.add_argument("--cluster", metavar="ADDRESS",
+                   help="run on Dask: tcp://HOST:PORT of a scheduler, or local:N")
+    p.add_argument("--set", dest="overrides", action="append", default=[],
+                   metavar="NODE.FIELD=VALUE", help="override a graph field (repeatable)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar and no summary lines")
+    p.set_defaults(func=run)
+    return p
+
+
+def run(args) -> int:
+    """Run the batch described by parsed arguments; returns the exit status."""
+    from streamq.batch.driver import run_batch
+    return run_batch(args)

@@ -1,0 +1,277 @@
+"""The coordinating side of `streamq batch`: check the graph, list the inputs,
+skip what is done, hand the rest to an engine, gather the results.
+
+Ctrl-C (or SIGTERM) asks for a clean stop: files not started are dropped,
+running ones stop at their next step boundary (each worker looks for a stop
+file in the output folder), their outputs are closed and their reports
+marked incomplete, the summary is written and the exit status is 130. A
+second Ctrl-C ends the workers at once.
+"""
+
+from __future__ import annotations
+
+import queue
+import signal
+import sys
+import time
+import uuid
+from concurrent.futures import CancelledError
+from pathlib import Path
+from typing import Any
+
+from streamq.batch.inputs import expand_inputs, folder_name
+from streamq.batch.summary import file_entry, write_summary
+from streamq.batch.work import is_done, one_line, setup_key
+from streamq.engine.graph import Graph, parse_graph
+from streamq.errors import StreamqError
+
+EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
+POLL = 0.25
+
+
+def pick_batch_input(graph: Graph) -> str:
+    """The id of the file-source the inputs are bound to."""
+    label = str(graph.source) if graph.source else "<graph>"
+    chosen = graph.header.batch_input
+    if chosen is not None:
+        node = graph.nodes.get(chosen)
+        if node is None or node.kind != "file-source":
+            kind = node.kind if node is not None else "?"
+            raise StreamqError(f"{label}: [graph], field 'batch_input': node '{chosen}' is a "
+                               f"'{kind}'; name a file-source node")
+        return chosen
+    sources = [nid for nid in graph.order if graph.nodes[nid].kind == "file-source"]
+    if not sources:
+        raise StreamqError(f"{label}: the graph has no file-source to bind the batch inputs to")
+    if len(sources) > 1:
+        raise StreamqError(f"{label}: the graph has {len(sources)} file-sources "
+                           f"({', '.join(sources)}); set batch_input in [graph] to the one that "
+                           f"reads the batch inputs")
+    return sources[0]
+
+
+def check_graph(graph: Graph, node: str, overrides: list[str]) -> None:
+    """Refuse graphs that cannot run once per file."""
+    label = str(graph.source) if graph.source else "<graph>"
+    for item in overrides:
+        key = item.split("=", 1)[0].strip()
+        if key == f"{node}.path":
+            raise StreamqError(f"--set {item!r}: node '{node}' reads the batch inputs; its path "
+                               f"comes from --inputs")
+    for nid in graph.order:
+        n = graph.nodes[nid]
+        if n.live_only:
+            raise StreamqError(f"{label}: node '{nid}': kind '{n.kind}' needs a live run; a batch "
+                               f"runs offline")
+        path = getattr(n.config, "path", None)
+        if n.role == "sink" and isinstance(path, str) and Path(path).expanduser().is_absolute():
+            raise StreamqError(f"{label}: node '{nid}', field 'path': {path} is absolute, so every "
+                               f"file of the batch would write it; give a relative path (it lands "
+                               f"in each file's own folder)")
+
+
+class BatchProgress:
+    """Files done / total, audio hours processed and speed as a multiple of real
+    time (tqdm on stderr; nothing when quiet or stderr is not a terminal)."""
+
+    def __init__(self, total: int, initial: int, quiet: bool, label: str):
+        self.bar = None
+        self.audio = 0.0
+        self.t0 = time.perf_counter()
+        if quiet or not sys.stderr.isatty():
+            return
+        from tqdm import tqdm
+        self.bar = tqdm(total=total, initial=initial, desc=label, unit="file", leave=False,
+                        dynamic_ncols=True,
+                        bar_format="{desc}: {n_fmt}/{total_fmt} files |{bar}| {postfix} "
+                                   "[{elapsed}, {remaining} left]")
+        self.bar.set_postfix_str("0.00 h audio", refresh=True)
+
+    def file_done(self, audio_seconds: float) -> None:
+        self.audio += audio_seconds
+        if self.bar is None:
+            return
+        elapsed = max(time.perf_counter() - self.t0, 1e-9)
+        self.bar.set_postfix_str(f"{self.audio / 3600:.2f} h audio, "
+                                 f"{self.audio / elapsed:,.0f}x real time", refresh=False)
+        self.bar.update(1)
+
+    def note(self, text: str) -> None:
+        if self.bar is not None:
+            self.bar.write(text, file=sys.stderr)
+        else:
+            print(text, file=sys.stderr)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _result_of(job: dict[str, Any], fut) -> dict[str, Any]:
+    base = {"input": job["input"], "folder": job["folder"], "samples": 0, "audio_seconds": 0.0,
+            "seconds": 0.0}
+    try:
+        return fut.result()
+    except CancelledError:
+        return {**base, "status": "not run", "error": None}
+    except Exception as exc:  # the worker itself died (crash, out of memory, lost node)
+        return {**base, "status": "failed", "error": f"worker failed: {one_line(exc)}"}
+
+
+def run_batch(args) -> int:
+    from streamq.batch.engines import make_engine, parse_cluster_address
+    from streamq.runner import prepare_out_dir
+
+    overrides = list(getattr(args, "overrides", []) or [])
+    graph_path = Path(args.graph).expanduser()
+    try:
+        text = graph_path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise StreamqError(f"{graph_path}: no such graph file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise StreamqError(f"{graph_path}: cannot read graph file: {exc}") from None
+    graph_path = graph_path.resolve()
+    graph = parse_graph(text, graph_path, overrides)
+    node = pick_batch_input(graph)
+    check_graph(graph, node, overrides)
+    if args.workers is not None and args.workers < 1:
+        raise StreamqError(f"--workers {args.workers}: give at least 1")
+    if args.cluster is not None:
+        if args.workers is not None:
+            raise StreamqError("give --workers (local pool) or --cluster, not both")
+        parse_cluster_address(args.cluster)
+    out = prepare_out_dir(Path(args.out).expanduser()).resolve()
+    inputs = expand_inputs(list(args.inputs), exclude=out)
+    quiet = bool(getattr(args, "quiet", False))
+
+    setup = setup_key(text, overrides, node)
+    files_dir = out / "files"
+    run_id = uuid.uuid4().hex[:10]
+    stop_file = out / f".stop-{run_id}"
+    states: dict[str, dict[str, Any]] = {}
+    jobs: list[dict[str, Any]] = []
+    for inp in inputs:
+        folder = files_dir / folder_name(inp)
+        if is_done(folder, inp, setup):
+            states[str(inp)] = {"status": "done", "error": None, "reused": True,
+                                "folder": str(folder)}
+            continue
+        states[str(inp)] = {"status": "not run", "error": None, "reused": False,
+                            "folder": str(folder)}
+        jobs.append({"graph_text": text, "graph_file": str(graph_path), "overrides": overrides,
+                     "node": node, "input": str(inp), "folder": str(folder), "setup": setup,
+                     "stop_file": str(stop_file), "run_id": run_id})
+    reused = len(inputs) - len(jobs)
+
+    engine = None
+    engine_name = "none (every file already done)"
+    stopping = killed = False
+    processed_audio = 0.0
+    t0 = time.perf_counter()
+    stop_requests: list[int] = []
+
+    def on_signal(signum, frame):
+        if stop_requests:
+            raise KeyboardInterrupt
+        stop_requests.append(signum)
+
+    old_handlers = {}
+    bar = BatchProgress(len(inputs), reused, quiet, graph.name)
+    try:
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            try:
+                old_handlers[sig] = signal.signal(sig, on_signal)
+            except ValueError:  # not the main thread
+                pass
+        if jobs:
+            engine = make_engine(args.workers, args.cluster, len(jobs))
+            engine_name = engine.describe()
+            done_q: queue.Queue = queue.Queue()
+            submitted = 0
+            for job in jobs:
+                if stop_requests:
+                    break
+                engine.submit(job, done_q)
+                submitted += 1
+            received = 0
+            while received < submitted:
+                if stop_requests and not stopping:
+                    stopping = True
+                    stop_file.touch()
+                    engine.cancel_pending()
+                    bar.note("streamq: stopping: finishing the current step of the running files "
+                             "(Ctrl-C again to stop at once)")
+                try:
+                    job, fut = done_q.get(timeout=POLL)
+                except queue.Empty:
+                    continue
+                received += 1
+                res = _result_of(job, fut)
+                states[job["input"]].update(status=res["status"], error=res.get("error"))
+                if res["status"] == "done":
+                    processed_audio += float(res.get("audio_seconds") or 0.0)
+                    bar.file_done(float(res.get("audio_seconds") or 0.0))
+                elif res["status"] in ("failed",):
+                    bar.file_done(0.0)
+            stopping = stopping or bool(stop_requests)
+    except KeyboardInterrupt:
+        stopping = killed = True
+        if engine is not None:
+            engine.kill()
+    finally:
+        for sig, h in old_handlers.items():
+            signal.signal(sig, h)
+        bar.close()
+        if engine is not None and not killed:
+            engine.close()
+        try:
+            stop_file.unlink()
+        except OSError:
+            pass
+    wall = time.perf_counter() - t0
+
+    entries = [file_entry(str(inp), states[str(inp)]["folder"], states[str(inp)]["status"],
+                          states[str(inp)]["error"], states[str(inp)]["reused"]) for inp in inputs]
+    counts: dict[str, int] = {}
+    for e in entries:
+        counts[e["status"]] = counts.get(e["status"], 0) + 1
+    done_audio = sum(e["audio_seconds"] or 0.0 for e in entries if e["status"] == "done")
+    head = {"graph": graph.name, "graph_file": str(graph_path), "batch_input": node,
+            "overrides": overrides, "engine": engine_name, "out_dir": str(out),
+            "complete": counts.get("done", 0) == len(entries), "files_total": len(entries),
+            "counts": counts, "reused": reused, "audio_seconds_done": done_audio,
+            "this_run": {"files_run": len(jobs), "audio_seconds": processed_audio,
+                         "wall_seconds": wall}}
+    paths = write_summary(out, head, entries)
+
+    failed = [e for e in entries if e["status"] == "failed"]
+    if not quiet:
+        speed = processed_audio / wall if wall > 0 else 0.0
+        print(f"{graph.name}: {counts.get('done', 0)} of {len(entries)} files done "
+              f"({reused} from an earlier run), {len(failed)} failed"
+              + (f", {counts.get('interrupted', 0) + counts.get('not run', 0)} not finished"
+                 if stopping else "")
+              + f"; {processed_audio / 3600:.2f} h of audio run in {wall:.1f} s "
+                f"({speed:,.0f}x real time) on {engine_name}")
+        import json
+        tot = json.loads(paths[1].read_text(encoding="utf-8"))["totals"]
+        for mid, t in tot.items():
+            def f(key, fmt="{:.2f}"):
+                v = t.get(key)
+                return "n/a" if v is None else fmt.format(v)
+            print(f"  {mid}: SNR {f('snr_db')} dB over all files (per file {f('snr_db_min')} to "
+                  f"{f('snr_db_max')} dB, median {f('snr_db_median')}), segmental SNR "
+                  f"{f('segsnr_db')} dB, {f('bits_per_sample', '{:.3f}')} bits/sample")
+        print(f"  summary: {', '.join(str(p) for p in paths)}")
+    if failed:
+        print(f"streamq: {len(failed)} file(s) failed:", file=sys.stderr)
+        for e in failed[:20]:
+            err = e["error"] or "unknown error"
+            print(f"  {err if e['input'] in err else e['input'] + ': ' + err}", file=sys.stderr)
+        if len(failed) > 20:
+            print(f"  ... and {len(failed) - 20} more (see {paths[0]})", file=sys.stderr)
+    if stopping:
+        print(f"streamq: interrupted; {counts.get('done', 0)} finished files are kept, run the "
+              f"same command again to do the rest", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    return EXIT_SOME_FAILED if failed else EXIT_OK

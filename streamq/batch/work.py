@@ -1,0 +1,190 @@
+"""One file of a batch, as run inside a worker (a pool process or a Dask worker).
+
+:func:`process_file` binds the graph's batch input to the file, builds and
+runs the graph into the file's own folder (``report.json`` and the graph's
+outputs), and writes the folder's marker, ``batch.json``: the input's size
+and modification time as they were when the run started, a fingerprint of
+the graph setup, and how the run ended. A later batch skips the file when
+the marker says "done", the report is complete, and neither the input nor
+the setup has changed since.
+
+Nothing here touches module-level state: a Dask worker may run several files
+at once in threads.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import signal
+import time
+import tomllib
+from pathlib import Path
+from typing import Any
+
+from streamq.engine.graph import Graph, validate_graph
+from streamq.engine.scheduler import Interrupted, build, run_offline
+from streamq.errors import StreamqError
+
+MARKER = "batch.json"
+REPORT = "report.json"
+#: How often (seconds) a running file looks for the batch's stop request.
+STOP_POLL = 0.2
+
+
+def setup_key(graph_text: str, overrides: list[str], node: str) -> str:
+    """Fingerprint of what decides a file's results besides the file itself."""
+    h = hashlib.sha256()
+    for part in (graph_text, json.dumps(list(overrides)), node):
+        h.update(part.encode("utf-8", "surrogateescape"))
+        h.update(b"\0")
+    return h.hexdigest()[:16]
+
+
+def input_stamp(path: Path) -> tuple[int, int] | None:
+    """(size in bytes, modification time in ns) of an input, or None when it is missing."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return st.st_size, st.st_mtime_ns
+
+
+def read_json(path: Path) -> dict[str, Any] | None:
+    try:
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) else None
+
+
+def is_done(folder: Path, input_path: Path, setup: str) -> bool:
+    """Whether ``folder`` holds a finished run of ``input_path`` under this setup,
+    made from the input as it is now (same size and modification time)."""
+    marker = read_json(Path(folder) / MARKER)
+    if not marker or marker.get("status") != "done" or marker.get("setup") != setup:
+        return False
+    if marker.get("input") != str(input_path):
+        return False
+    stamp = input_stamp(input_path)
+    if stamp is None or [marker.get("size"), marker.get("mtime_ns")] != list(stamp):
+        return False
+    report = read_json(Path(folder) / REPORT)
+    return bool(report and report.get("complete") is True)
+
+
+def bind_graph(graph_text: str, graph_file: Path, overrides: list[str], node: str,
+               input_path: Path) -> Graph:
+    """The graph with file-source ``node`` reading ``input_path``.
+
+    The path goes straight into the parsed TOML, so no quoting of file names
+    is involved; ``--set`` overrides are applied after it.
+    """
+    raw = tomllib.loads(graph_text)
+    raw["nodes"][node]["path"] = str(input_path)
+    return validate_graph(raw, Path(graph_file), list(overrides))
+
+
+def one_line(exc: BaseException) -> str:
+    """An exception as a single line (GraphError may list several problems)."""
+    text = "; ".join(line.strip() for line in str(exc).splitlines() if line.strip())
+    if isinstance(exc, StreamqError):
+        return text or type(exc).__name__
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
+def _write_json(path: Path, data: dict[str, Any]) -> None:
+    tmp = path.with_name(f".{path.name}.tmp")
+    tmp.write_text(json.dumps(data, indent=2) + "\n", encoding="utf-8")
+    os.replace(tmp, path)
+
+
+def _remove(path: Path) -> None:
+    try:
+        path.unlink()
+    except FileNotFoundError:
+        pass
+
+
+class _StopCheck:
+    """Progress callback for run_offline: stops the run at the next step
+    boundary once the batch's stop file exists (checked every STOP_POLL s)."""
+
+    def __init__(self, stop_file: Path):
+        self.stop_file = stop_file
+        self.next_check = time.monotonic() + STOP_POLL
+
+    def __call__(self, done: int, total: int | None) -> None:
+        now = time.monotonic()
+        if now >= self.next_check:
+            self.next_check = now + STOP_POLL
+            if self.stop_file.exists():
+                raise Interrupted("batch stop")
+
+
+def process_file(job: dict[str, Any]) -> dict[str, Any]:
+    """Run the batch graph over one input file; never raises for a bad file.
+
+    Parameters
+    ----------
+    job : dict with ``graph_text``, ``graph_file``, ``overrides``, ``node`` (the
+        batch-input file-source), ``input``, ``folder`` (this file's output folder),
+        ``setup`` (see :func:`setup_key`) and ``stop_file``.
+
+    Returns
+    -------
+    dict with ``input``, ``folder``, ``status`` ("done", "failed", "interrupted"
+    or "not run"), ``error`` (one line, or None), ``samples``, ``audio_seconds``
+    and ``seconds`` (wall time).
+    """
+    t0 = time.perf_counter()
+    inp, folder = Path(job["input"]), Path(job["folder"])
+    out: dict[str, Any] = {"input": str(inp), "folder": str(folder), "status": "not run",
+                           "error": None, "samples": 0, "audio_seconds": 0.0, "seconds": 0.0}
+    stop_file = Path(job["stop_file"])
+    if stop_file.exists():
+        return out
+    stamp = input_stamp(inp)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        # A stale marker or report must never make a new, unfinished run look done.
+        _remove(folder / MARKER)
+        _remove(folder / REPORT)
+    except OSError as exc:
+        out.update(status="failed", error=f"{folder}: cannot prepare the output folder "
+                                          f"({exc.strerror or exc})")
+        return out
+    try:
+        graph = bind_graph(job["graph_text"], job["graph_file"], job["overrides"], job["node"], inp)
+        built = build(graph, folder)
+        result = run_offline(built, progress=_StopCheck(stop_file), handle_signals=False)
+        out["samples"] = result.samples
+        out["audio_seconds"] = float(result.report.get("audio_seconds", 0.0))
+        if result.complete:
+            if input_stamp(inp) != stamp:
+                out.update(status="failed", error=f"{inp}: the file changed during the run")
+            else:
+                out["status"] = "done"
+        else:
+            out["status"] = "interrupted"
+            out["error"] = f"stopped at sample {result.samples}"
+    except Exception as exc:  # one bad file must not stop the batch: record it
+        out.update(status="failed", error=one_line(exc))
+    out["seconds"] = time.perf_counter() - t0
+    marker = {"input": str(inp), "size": stamp[0] if stamp else None,
+              "mtime_ns": stamp[1] if stamp else None, "setup": job["setup"],
+              "status": out["status"], "error": out["error"], "samples": out["samples"],
+              "audio_seconds": out["audio_seconds"], "seconds": out["seconds"],
+              "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
+    try:
+        _write_json(folder / MARKER, marker)
+    except OSError as exc:
+        out.update(status="failed", error=f"{folder / MARKER}: cannot write ({exc.strerror or exc})")
+    return out
+
+
+def ignore_sigint() -> None:
+    """Pool-worker initializer: Ctrl-C in a terminal reaches every process of the
+    group; the coordinator handles it and tells the workers to stop."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)

@@ -130,6 +130,24 @@ class Codebook:
         object.__setattr__(self, "_int16", None)
         object.__setattr__(self, "_grid", None)
 
+    @classmethod
+    def _trusted(cls, levels: np.ndarray, thresholds: np.ndarray, version: int = 0) -> "Codebook":
+        """Build without validation from fresh float64 arrays already known valid.
+
+        For the design routines' hot paths, which have checked ordering and
+        finiteness themselves. The arrays are taken over (made read-only).
+        """
+        self = object.__new__(cls)
+        levels.setflags(write=False)
+        thresholds.setflags(write=False)
+        object.__setattr__(self, "_levels", levels)
+        object.__setattr__(self, "_thresholds", thresholds)
+        object.__setattr__(self, "_version", int(version))
+        object.__setattr__(self, "_dtype", index_dtype(levels.size))
+        object.__setattr__(self, "_int16", None)
+        object.__setattr__(self, "_grid", None)
+        return self
+
     # -- immutability ------------------------------------------------------
     def __setattr__(self, name, value):
         raise AttributeError("Codebook is immutable; use with_version() for a new version")

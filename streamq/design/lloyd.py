@@ -69,7 +69,7 @@ class HistogramPrefix:
 
     Build with :func:`histogram_prefix`. The centers are stored shifted by
     ``ref`` (the midpoint of their range) and the weights normalised to sum
-    to one, which keeps the second-moment prefix sums well conditioned.
+    to one, which keeps the moment sums well conditioned.
 
     Attributes
     ----------
@@ -79,24 +79,31 @@ class HistogramPrefix:
         ``centers - ref``.
     ref : float
         Shift applied to the centers.
-    prefix : ndarray, shape (bins + 1, 3)
-        Cumulative sums of ``w``, ``w (c - ref)``, ``w (c - ref)**2`` with a
-        leading row of zeros.
+    p0, p1 : ndarray
+        Cumulative sums (length ``bins + 1``, leading zero) of the normalised
+        weights ``w`` and of ``w * (c - ref)``.
+    total2 : float
+        ``sum w (c - ref)**2`` (normalised weights).
     power : float
         Weighted mean square of the original centers.
     occupied : int
-        Number of distinct center values with positive weight.
+        1 if all the weight sits on one value (a constant signal), else -1
+        (more than one value; not counted).
     total : float
         Sum of the original weights.
     """
 
-    __slots__ = ("centers", "shifted", "ref", "prefix", "power", "occupied", "total")
+    __slots__ = ("centers", "shifted", "ref", "p0", "p1", "_p2", "total2", "power",
+                 "occupied", "total")
 
-    def __init__(self, centers, shifted, ref, prefix, power, occupied, total):
+    def __init__(self, centers, shifted, ref, p0, p1, total2, power, occupied, total):
         self.centers = centers
         self.shifted = shifted
         self.ref = ref
-        self.prefix = prefix
+        self.p0 = p0
+        self.p1 = p1
+        self._p2 = None
+        self.total2 = total2
         self.power = power
         self.occupied = occupied
         self.total = total
@@ -106,9 +113,32 @@ class HistogramPrefix:
         """Number of bins."""
         return self.centers.size
 
+    @property
+    def p2(self) -> np.ndarray:
+        """Cumulative sums of ``w (c - ref)**2`` (computed on first use)."""
+        if self._p2 is None:
+            p2 = np.empty_like(self.p0)
+            p2[0] = 0.0
+            np.cumsum(self.weights() * self.shifted * self.shifted, out=p2[1:])
+            self._p2 = p2
+        return self._p2
+
     def weights(self) -> np.ndarray:
         """Normalised weights recovered from the prefix sums."""
-        return np.diff(self.prefix[:, 0])
+        return np.diff(self.p0)
+
+    def moments(self, bounds) -> np.ndarray:
+        """Cell moments (rows: cells; columns: sum w, sum w c, sum w c^2).
+
+        ``bounds`` are bin indices, ``bounds[i]:bounds[i+1]`` being cell i
+        (shifted coordinates).
+        """
+        b = np.asarray(bounds, dtype=np.intp)
+        out = np.empty((b.size - 1, 3))
+        for col, p in enumerate((self.p0, self.p1, self.p2)):
+            g = p[b]
+            out[:, col] = g[1:] - g[:-1]
+        return out
 
 
 def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPrefix:
@@ -127,28 +157,51 @@ def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPre
     Returns
     -------
     HistogramPrefix
+
+    Raises
+    ------
+    StreamqError
+        Empty input, NaN or infinite values, unsorted centers, negative
+        weights or a zero total.
     """
+    c = np.asarray(centers, dtype=np.float64)
+    w = np.asarray(weights, dtype=np.float64)
+    if c.ndim != 1 or w.ndim != 1:
+        c = c.reshape(-1)
+        w = w.reshape(-1)
+    total = float(w.sum()) if w.size else 0.0
     if validate:
-        c, w = histogram_arrays(centers, weights)
-    else:
-        c = np.asarray(centers, dtype=np.float64)
-        w = np.asarray(weights, dtype=np.float64)
-    total = float(w.sum())
+        # cheap checks first; the detailed ones only name the culprit
+        ok = (
+            c.size > 0
+            and c.shape == w.shape
+            and math.isfinite(total)
+            and total > 0.0
+            and math.isfinite(c[0])
+            and math.isfinite(c[-1])
+            and (c.size == 1 or bool((c[1:] >= c[:-1]).all()))
+            and w.min() >= 0.0
+        )
+        if not ok:
+            c, w = histogram_arrays(c, w)
+            total = float(w.sum())
+    n = c.size
     ref = 0.5 * (float(c[0]) + float(c[-1]))
     cs = c - ref
-    wn = w / total
-    prefix = np.empty((c.size + 1, 3))
-    prefix[0] = 0.0
-    np.cumsum(wn, out=prefix[1:, 0])
-    t = wn * cs
-    np.cumsum(t, out=prefix[1:, 1])
-    t *= cs
-    np.cumsum(t, out=prefix[1:, 2])
-    mean_s = prefix[-1, 1]
-    power = float(prefix[-1, 2] + 2.0 * ref * mean_s + ref * ref)
-    pos = c[w > 0]
-    occupied = int(pos.size and 1 + np.count_nonzero(pos[1:] != pos[:-1]))
-    return HistogramPrefix(c, cs, ref, prefix, max(power, 0.0), occupied, total)
+    wn = w * (1.0 / total)
+    p0 = np.empty(n + 1)
+    p1 = np.empty(n + 1)
+    p0[0] = 0.0
+    p1[0] = 0.0
+    np.cumsum(wn, out=p0[1:])
+    wc = wn * cs
+    np.cumsum(wc, out=p1[1:])
+    total2 = float(wc.dot(cs))
+    mean_s = float(p1[-1])
+    power = total2 + 2.0 * ref * mean_s + ref * ref
+    single = c[0] == c[-1] or float(w.max()) == total
+    return HistogramPrefix(c, cs, ref, p0, p1, total2, max(power, 0.0),
+                           1 if single else -1, total)
 
 
 def sample_histogram(samples, bins: int = 4096, *, value_range=None):
@@ -208,137 +261,154 @@ def _cube_root_start(shifted, weights, count):
     dx[0] = c[1] - c[0]
     dx[-1] = c[-1] - c[-2]
     mass = np.cbrt(weights) * np.cbrt(dx * dx)
+    if not mass.sum() > 0:
+        mass = np.asarray(weights, dtype=np.float64)
     cum = np.cumsum(mass)
-    if not cum[-1] > 0:
-        mass = weights
-        cum = np.cumsum(mass)
     cum = cum / cum[-1]
-    # interpolate between point positions (midpoint rule on the masses)
-    pos = cum - 0.5 * mass / max(float(np.sum(mass)), 1e-300)
+    # each point mass sits at the middle of its share of the cumulative sum
+    pos = cum - 0.5 * mass / mass.sum()
     q = (np.arange(count) + 0.5) / count
     return np.interp(q, pos, c)
 
 
-def _split_worst(S, y, bounds, prefix, shifted, d):
+def _split_worst(S, y, bounds, pre):
     """Reassign empty cells by splitting the cells with the largest distortion.
 
     ``S`` holds the cell moments (rows: cells), ``y`` the levels (centroids
-    for occupied cells), ``bounds`` the bin index bounds of each cell and
-    ``d`` the per-cell distortion. Returns the distortion change and whether
-    some empty cells could not be used (all occupied cells are pure).
+    for occupied cells; changed in place and re-sorted) and ``bounds`` the
+    bin index bounds of each cell. Returns the new total distortion and
+    whether some empty cells could not be used (all occupied cells pure).
     """
-    empty = np.flatnonzero(S[:, 0] <= 0.0)
-    change = 0.0
+    s0 = S[:, 0]
+    occ = s0 > 0.0
+    d = np.where(occ, S[:, 2] - S[:, 1] * np.where(occ, y, 0.0), 0.0)
+    np.maximum(d, 0.0, out=d)
+    empty = np.flatnonzero(~occ)
     stuck = False
+    p0, p1, p2 = pre.p0, pre.p1, pre.p2
+    shifted = pre.shifted
     for e in empty:
         j = int(np.argmax(d))
+        while d[j] > 0.0:
+            lo, hi = int(bounds[j]), int(bounds[j + 1])
+            m = int(np.searchsorted(shifted[lo:hi], y[j], side="left")) + lo
+            m = min(max(m, lo + 1), hi - 1)
+            l0, r0 = p0[m] - p0[lo], p0[hi] - p0[m]
+            if l0 > 0.0 and r0 > 0.0:
+                break
+            d[j] = 0.0  # this cell cannot be split; try the next worst
+            j = int(np.argmax(d))
         if not d[j] > 0.0:
             stuck = True
             break
-        lo, hi = int(bounds[j]), int(bounds[j + 1])
-        m = int(np.searchsorted(shifted[lo:hi], y[j], side="left")) + lo
-        m = min(max(m, lo + 1), hi - 1)
-        left = prefix[m] - prefix[lo]
-        right = prefix[hi] - prefix[m]
-        if not (left[0] > 0.0 and right[0] > 0.0):
-            d[j] = 0.0  # cannot split this one; try the next worst
-            continue
-        yl = left[1] / left[0]
-        yr = right[1] / right[0]
-        dl = max(left[2] - left[1] * yl, 0.0)
-        dr = max(right[2] - right[1] * yr, 0.0)
-        change += dl + dr - d[j]
+        l1, r1 = p1[m] - p1[lo], p1[hi] - p1[m]
+        l2, r2 = p2[m] - p2[lo], p2[hi] - p2[m]
+        yl, yr = l1 / l0, r1 / r0
         y[j], y[e] = yl, yr
-        d[j], d[e] = dl, dr
+        d[j] = max(l2 - l1 * yl, 0.0)
+        d[e] = max(r2 - r1 * yr, 0.0)
     y.sort()
-    return change, stuck
+    return float(d.sum()), stuck
+
+
+_HUGE = 1e308  # finite start value, so that the first relative change is large
 
 
 def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
     """Plain Lloyd on prefix sums; ``y`` are levels in shifted coordinates.
 
-    Returns (levels, iterations, converged, last distortion, history, stuck).
+    The loop is written for low per-iteration overhead (a handful of numpy
+    calls on arrays of length L): the thresholds are kept doubled
+    (``y[i] + y[i+1]``) and searched among doubled centers, which is exact;
+    the distortion is the total second moment minus ``sum(s1 * y)``. Empty
+    cells show up as a NaN distortion (0/0) and are handled outside the
+    fast path, by :func:`_split_worst`.
+
+    Returns (levels, iterations, converged, history, stuck).
     """
-    P = pre.prefix
-    cs = pre.shifted
+    p0 = pre.p0
+    p1 = pre.p1
+    cs2 = pre.shifted * 2.0
     L = y.size
-    nb = cs.size
+    total2 = pre.total2
     b = np.empty(L + 1, dtype=np.intp)
     b[0] = 0
-    b[-1] = nb
-    b_old = np.full(L + 1, -1, dtype=np.intp)
-    t = np.empty(L - 1)
-    S = np.empty((L, 3))
+    b[-1] = cs2.size
+    inner = b[1:-1]
+    t2 = np.empty(L - 1)
+    y = np.array(y, dtype=np.float64)
     history = [] if record else None
-    D_prev = math.inf
+    D_prev = _HUGE
     converged = False
     stuck = False
     it = 0
     searchsorted = np.searchsorted
     add = np.add
-    subtract = np.subtract
-    for it in range(1, max_iter + 1):
-        add(y[:-1], y[1:], out=t)
-        t *= 0.5
-        b[1:-1] = searchsorted(cs, t)
-        if it > 1 and np.array_equal(b, b_old):
-            converged = True
-            it -= 1
-            break
-        G = P[b]
-        subtract(G[1:], G[:-1], out=S)
-        s0 = S[:, 0]
-        s1 = S[:, 1]
-        if s0.all():
-            y = s1 / s0
-            D = S[:, 2].sum() - s1.dot(y)
-        else:
-            occ = s0 > 0.0
-            y = y.copy()
-            y[occ] = s1[occ] / s0[occ]
-            d = np.where(occ, S[:, 2] - s1 * y, 0.0)
-            np.maximum(d, 0.0, out=d)
-            D = float(d.sum())
-            change, stuck = _split_worst(S, y, b, P, cs, d)
-            D += change
-        if record:
-            history.append(D)
-        b, b_old = b_old, b
-        b[0] = 0
-        b[-1] = nb
-        if stuck or D <= 0.0 or D_prev - D <= tol * D_prev:
-            converged = True
-            break
-        D_prev = D
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for it in range(1, max_iter + 1):
+            add(y[:-1], y[1:], out=t2)
+            inner[:] = searchsorted(cs2, t2)
+            g0 = p0[b]
+            g1 = p1[b]
+            s0 = g0[1:] - g0[:-1]
+            s1 = g1[1:] - g1[:-1]
+            y_new = s1 / s0
+            D = total2 - s1.dot(y_new)
+            if D != D:  # NaN: some cell is empty
+                S = pre.moments(b)
+                occ = s0 > 0.0
+                y_new[~occ] = y[~occ]
+                D, stuck = _split_worst(S, y_new, b, pre)
+            y = y_new
+            if record:
+                history.append(D)
+            if stuck or D <= 0.0 or D_prev - D <= tol * D_prev:
+                converged = True
+                break
+            D_prev = D
     return y, it, converged, history, stuck
 
 
 def _finish_histogram(pre: HistogramPrefix, y, count, version):
-    """Codebook from shifted levels plus exact figures via the prefix sums."""
-    cb = codebook_from_levels(y + pre.ref, count, version)
-    th = cb.thresholds - pre.ref
+    """Codebook from shifted levels, with its exact MSE and cell probabilities.
+
+    The figures are those of the returned codebook (its own nearest-
+    neighbour partition of the histogram), computed from the prefix sums.
+    """
+    lv = y + pre.ref
+    ok = lv.size == count
+    if ok:
+        gaps = np.diff(lv)
+        th = lv[:-1] + 0.5 * gaps
+        ok = gaps.min() > 0.0 and (count == 2 or bool((th[1:] > th[:-1]).all()))
+    if ok:
+        cb = Codebook._trusted(lv, th, version)
+    else:
+        cb = codebook_from_levels(lv, count, version)
     lv = cb.levels - pre.ref
     b = np.empty(count + 1, dtype=np.intp)
     b[0] = 0
     b[-1] = pre.shifted.size
-    b[1:-1] = np.searchsorted(pre.shifted, th)
-    G = pre.prefix[b]
-    S = G[1:] - G[:-1]
-    d = S[:, 2] - 2.0 * lv * S[:, 1] + lv * lv * S[:, 0]
-    mse = float(max(d.sum(), 0.0))
-    return cb, mse, S[:, 0]
+    b[1:-1] = np.searchsorted(pre.shifted, cb.thresholds - pre.ref)
+    g0 = pre.p0[b]
+    g1 = pre.p1[b]
+    s0 = g0[1:] - g0[:-1]
+    s1 = g1[1:] - g1[:-1]
+    mse = pre.total2 - 2.0 * float(lv.dot(s1)) + float((lv * lv).dot(s0))
+    return cb, max(mse, 0.0), s0
 
 
 def _initial_levels(pre, count, init):
     if init is None:
-        return _cube_root_start(pre.shifted, np.diff(pre.prefix[:, 0]), count)
+        return _cube_root_start(pre.shifted, pre.weights(), count)
     lv = init.levels if isinstance(init, Codebook) else finite_array(init, "init")
     if lv.size != count:
         raise StreamqError(
             f"init has {lv.size} levels but {count} were asked for"
         )
-    y = np.array(lv, dtype=np.float64) - pre.ref
-    y.sort()
+    y = lv - pre.ref
+    if not isinstance(init, Codebook):
+        y.sort()
     return y
 
 
@@ -411,11 +481,14 @@ def lloyd_max_histogram(
     max_iter = int(max_iter)
     if max_iter < 0:
         raise StreamqError(f"max_iter must be non-negative, got {max_iter}")
-    if pre.occupied <= 1 or max_iter == 0:
-        it, converged, history = 0, pre.occupied <= 1, []
-        if pre.occupied <= 1:
-            w = np.diff(pre.prefix[:, 0])
-            y = np.array([pre.shifted[np.argmax(w)]])
+    history = None
+    if pre.occupied == 1:
+        # constant signal: one value, spare levels spread around it
+        it, converged = 0, True
+        w = np.diff(pre.prefix[:, 0])
+        y = pre.shifted[np.argmax(w)].reshape(1)
+    elif max_iter == 0:
+        it, converged = 0, False
     else:
         y, it, converged, history, stuck = _lloyd_core(pre, y, float(tol), max_iter, record)
         if stuck:
@@ -423,13 +496,15 @@ def lloyd_max_histogram(
             w = np.diff(pre.prefix[:, 0])
             y = pre.shifted[w > 0]
     cb, mse, probs = _finish_histogram(pre, y, count, version)
+    p = probs[probs > 0.0]
+    entropy = max(-float(p.dot(np.log2(p))), 0.0)
     rep = DesignReport(
         method=method,
         size=count,
         iterations=it,
         mse=mse,
         snr_db=snr_db(pre.power, mse),
-        entropy_bits=index_entropy(probs),
+        entropy_bits=entropy,
         converged=converged,
         power=pre.power,
         reference="histogram",

@@ -33,6 +33,13 @@ def prepare_out_dir(out: Path) -> Path:
     return out
 
 
+def speed_text(speed: float) -> str:
+    """A speed as a multiple of real time: ``1,234x``, ``42x``, ``0.75x``."""
+    if speed == float("inf"):
+        return "inf x"
+    return f"{speed:,.0f}x" if speed >= 10 else f"{speed:.2g}x"
+
+
 class Progress:
     """A progress bar (tqdm) showing audio position, speed as a multiple of
     real time and time left. It appears only after two seconds, and not at
@@ -48,13 +55,14 @@ class Progress:
         self.bar = tqdm(total=round(total_frames / rate, 1), desc=label, delay=2.0, leave=False,
                         unit="s", dynamic_ncols=True,
                         bar_format="{desc}: {percentage:3.0f}%|{bar}| {n:.1f}/{total:.1f} s audio"
-                                   " {postfix} [{remaining} left]")
+                                   "{postfix} [{remaining} left]")
 
     def __call__(self, done: int, total: int | None) -> None:
         if self.bar is None:
             return
         elapsed = max(time.perf_counter() - self.t0, 1e-9)
-        self.bar.set_postfix_str(f"{done / self.rate / elapsed:,.0f}x real time", refresh=False)
+        self.bar.set_postfix_str(f"{speed_text(done / self.rate / elapsed)} real time",
+                                 refresh=False)
         self.bar.update(round(done / self.rate, 1) - self.bar.n)
 
     def close(self) -> None:
@@ -68,7 +76,7 @@ def summary_lines(result: RunResult) -> list[str]:
     speed = audio / result.seconds if result.seconds > 0 else float("inf")
     state = "done" if result.complete else f"stopped early at sample {rep['last_sample']}"
     lines = [f"{rep['graph']}: {state}: {audio:.2f} s of audio in {result.seconds:.2f} s "
-             f"({speed:,.0f}x real time); output in {result.out_dir}/"]
+             f"({speed_text(speed)} real time); output in {result.out_dir}/"]
     for nid, m in rep.get("meters", {}).items():
         def f(key, fmt="{:.2f}"):
             v = m.get(key)

@@ -485,7 +485,7 @@ def lloyd_max_histogram(
     if pre.occupied == 1:
         # constant signal: one value, spare levels spread around it
         it, converged = 0, True
-        w = np.diff(pre.prefix[:, 0])
+        w = pre.weights()
         y = pre.shifted[np.argmax(w)].reshape(1)
     elif max_iter == 0:
         it, converged = 0, False
@@ -493,7 +493,7 @@ def lloyd_max_histogram(
         y, it, converged, history, stuck = _lloyd_core(pre, y, float(tol), max_iter, record)
         if stuck:
             # all occupied cells are pure: keep one level per occupied value
-            w = np.diff(pre.prefix[:, 0])
+            w = pre.weights()
             y = pre.shifted[w > 0]
     cb, mse, probs = _finish_histogram(pre, y, count, version)
     p = probs[probs > 0.0]

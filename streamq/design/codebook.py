@@ -343,7 +343,7 @@ class Codebook:
         lo = float(th[0])
         span = float(th[-1]) - lo
         if n == 1 or not span > 0:
-            grid = (lo, 1.0, 2, np.array([0, 1], dtype=np.intp), np.array([th[0], np.inf]), 1)
+            grid = (lo, 1.0, 2, np.array([0, 1], dtype=np.intp), np.array([th[0], np.nan]), 1)
             object.__setattr__(self, "_grid", grid)
             return grid
         gaps = np.diff(th)
@@ -365,7 +365,8 @@ class Codebook:
                 if per_cell > _MAX_PER_CELL:
                     grid = None
                 else:
-                    ext = np.append(th, np.inf)
+                    # NaN sentinel: no value compares >= it, not even +inf
+                    ext = np.append(th, np.nan)
                     grid = (lo, scale, size, first.astype(np.intp), ext[first], per_cell)
         if grid is None:
             grid = (0.0, 0.0, 0, None, None, 0)
@@ -375,7 +376,8 @@ class Codebook:
     @staticmethod
     def _cells(x, lo, scale, size):
         """Monotone map from values to grid cells (NaN to the top cell)."""
-        v = (x - lo) * scale
+        with np.errstate(over="ignore", invalid="ignore"):
+            v = (x - lo) * scale
         v = np.maximum(v, 0.0)  # keeps NaN
         v = np.fmin(v, size - 1.0)  # NaN -> top cell
         return v.astype(np.intp)
@@ -395,7 +397,7 @@ class Codebook:
             return self.encode(x)
         flat = x.reshape(-1)
         out = np.empty(flat.size, dtype=self._dtype)
-        ext = np.append(self._thresholds, np.inf)
+        ext = np.append(self._thresholds, np.nan)
         for start in range(0, flat.size, _CHUNK):
             xs = flat[start:start + _CHUNK]
             cell = self._cells(xs, lo, scale, size)

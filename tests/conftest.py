@@ -7,6 +7,7 @@ and the command line is run as a real subprocess.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import subprocess
 import sys
@@ -52,6 +53,11 @@ def read_audio(path: Path) -> tuple[np.ndarray, int]:
     return data, rate
 
 
+def digest(path: Path) -> str:
+    """SHA-256 of a file's bytes (keeps assertion messages short)."""
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
 # -- audio files --------------------------------------------------------------------
 
 def make_audio(path: Path, frames: int, channels: int, rate: int = 48_000,
@@ -68,14 +74,19 @@ def make_audio(path: Path, frames: int, channels: int, rate: int = 48_000,
 
 # -- the command line ---------------------------------------------------------------
 
-def cli(*args: str | Path, cwd: Path | None = None, env: dict | None = None,
+def cli_env(pythonpath: list[Path] = ()) -> dict[str, str]:
+    """Environment for a child ``python -m streamq.cli``: this checkout first on the
+    path (after ``pythonpath``), whatever PYTHONPATH the test run itself had."""
+    env = dict(os.environ)
+    env["PYTHONPATH"] = os.pathsep.join([str(p) for p in pythonpath] + [str(REPO)])
+    return env
+
+
+def cli(*args: str | Path, cwd: Path | None = None, pythonpath: list[Path] = (),
         timeout: float = 120, **kw) -> subprocess.CompletedProcess:
     """Run ``python -m streamq.cli ARGS`` with this interpreter; capture text output."""
-    full_env = dict(os.environ)
-    full_env.pop("PYTHONPATH", None)
-    full_env.update(env or {})
     return subprocess.run([sys.executable, "-m", "streamq.cli", *map(str, args)],
-                          cwd=cwd, env=full_env, capture_output=True, text=True,
+                          cwd=cwd, env=cli_env(pythonpath), capture_output=True, text=True,
                           timeout=timeout, stdin=subprocess.DEVNULL, **kw)
 
 

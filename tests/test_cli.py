@@ -16,7 +16,8 @@ import time
 import pytest
 import soundfile as sf
 
-from conftest import DEMO, assert_names, cli, error_lines, make_audio, write_graph
+from conftest import (DEMO, assert_names, cli, cli_env, digest, error_lines, make_audio,
+                      write_graph)
 from streamq.engine.registry import registry
 
 
@@ -35,14 +36,14 @@ def assert_clean_failure(proc: subprocess.CompletedProcess, n_lines: int | None 
 
 # -- the demo -------------------------------------------------------------------------
 
-def _demo_outputs_match(out_dir) -> dict:
+def _demo_outputs_match(out_dir, cwd) -> dict:
     """report.json says complete, and every file the demo wrote holds every sample."""
     report = json.loads((out_dir / "report.json").read_text())
     assert report["complete"] is True
     assert report["samples"] > 0
     for nid, entry in report["outputs"].items():
         if "path" in entry:
-            info = sf.info(entry["path"])
+            info = sf.info(str(cwd / entry["path"]))  # relative paths: from the run's cwd
             assert info.frames == report["samples"] == entry["frames"], nid
     return report
 
@@ -51,7 +52,7 @@ def test_demo_runs(tmp_path):
     proc = cli("run", DEMO, "--out", tmp_path / "demo", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     assert "Traceback" not in proc.stderr
-    report = _demo_outputs_match(tmp_path / "demo")
+    report = _demo_outputs_match(tmp_path / "demo", tmp_path)
     assert report["graph"] == "demo"
     assert report["sample_rate"] == 48_000
     assert "demo: done" in proc.stdout
@@ -61,7 +62,7 @@ def test_demo_runs(tmp_path):
 def test_default_output_folder(tmp_path):
     proc = cli("run", DEMO, "--quiet", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
-    _demo_outputs_match(tmp_path / "streamq-out" / "demo")
+    _demo_outputs_match(tmp_path / "streamq-out" / "demo", tmp_path)
     assert proc.stdout == ""  # --quiet
 
 
@@ -74,7 +75,7 @@ def test_check_demo(tmp_path):
 
 def test_check_does_not_touch_an_existing_output(tmp_path):
     make_audio(tmp_path / "precious.wav", 4000, 2, rate=48_000, subtype="PCM_24")
-    before = (tmp_path / "precious.wav").read_bytes()
+    before = digest(tmp_path / "precious.wav")
     g = write_graph(tmp_path, f"""
         [nodes.feed]
         use = "test-signal"
@@ -86,7 +87,7 @@ def test_check_does_not_touch_an_existing_output(tmp_path):
     """)
     proc = cli("check", g)
     assert proc.returncode == 0, proc.stderr
-    assert (tmp_path / "precious.wav").read_bytes() == before
+    assert digest(tmp_path / "precious.wav") == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["g.toml", "precious.wav"]
 
 
@@ -159,9 +160,9 @@ BAD_GRAPHS = {
 }
 
 
-@pytest.mark.parametrize("command", ["run", "check"])
-@pytest.mark.parametrize("case", sorted(BAD_GRAPHS))
-def test_bad_graph_exit_2(tmp_path, command, case):
+@pytest.mark.parametrize("case, command", [(case, "run") for case in sorted(BAD_GRAPHS)]
+                         + [("unknown-kind", "check"), ("missing-audio", "check")])
+def test_bad_graph_exit_2(tmp_path, case, command):
     text, parts = BAD_GRAPHS[case]
     g = write_graph(tmp_path, text)
     proc = cli(command, g, *(["--out", tmp_path / "o"] if command == "run" else []))
@@ -302,11 +303,11 @@ def test_write_failure_keeps_the_older_file(tmp_path):
     out = tmp_path / "o"
     out.mkdir()
     make_audio(out / "out.wav", 1000, 2, rate=48_000, subtype="DOUBLE")
-    before = (out / "out.wav").read_bytes()
+    before = digest(out / "out.wav")
     g = _short_graph(tmp_path, seconds=2.0, subtype="DOUBLE")
     proc = cli("run", g, "--out", out, "--block", "4096", preexec_fn=_limit_file_size(256 * 1024))
     assert_clean_failure(proc, 1)
-    assert (out / "out.wav").read_bytes() == before
+    assert digest(out / "out.wav") == before
     assert not (out / ".out.wav.part").exists()
 
 
@@ -332,7 +333,7 @@ def test_interrupt_leaves_valid_partial_output(tmp_path, signum):
     out = tmp_path / "o"
     part = out / ".long.wav.part"
     proc = subprocess.Popen([sys.executable, "-m", "streamq.cli", "run", str(g), "--out", str(out)],
-                            stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                            env=cli_env(), stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     try:
         # Wait until the run is well inside its step loop: the temporary file

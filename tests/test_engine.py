@@ -11,7 +11,7 @@ import json
 import numpy as np
 import pytest
 
-from conftest import cli, make_audio, read_audio, run_file, write_graph
+from conftest import cli, digest, make_audio, read_audio, run_file, write_graph
 from streamq.engine.graph import parse_graph
 from streamq.engine.scheduler import REPLAY_BLOCK, build, run_offline
 from streamq.errors import StreamqError
@@ -37,6 +37,12 @@ def _drift_graph(seconds: float, rate: int = 8000, subtype: str = "DOUBLE") -> s
         input = "feed"
         path = "out.wav"
         subtype = "{subtype}"
+
+        [nodes.keep_pcm]
+        use = "file-sink"
+        input = "feed"
+        path = "pcm.wav"
+        subtype = "PCM_24"
     """
 
 
@@ -57,8 +63,14 @@ def _file_graph(source: str) -> str:
     """
 
 
-def _runs(tmp_path, graph_text, blocks):
-    """Run one graph once per block size; return {block: (samples, bytes, report)}."""
+def _runs(tmp_path, graph_text, blocks, bytes_of="pcm.wav"):
+    """Run one graph once per block size.
+
+    Returns {block: (samples of out.wav, digest of the ``bytes_of`` file, result)}.
+    File bytes are compared on an integer-PCM file only: for FLOAT/DOUBLE WAV
+    libsndfile writes a PEAK chunk holding the wall-clock time, so those bytes
+    differ between runs a second apart even when every sample is equal.
+    """
     g = write_graph(tmp_path, graph_text)
     out = {}
     for block in blocks:
@@ -66,19 +78,19 @@ def _runs(tmp_path, graph_text, blocks):
         result = run_file(g, d, block=block)
         assert result.complete
         data, _ = read_audio(d / "out.wav")
-        out[block] = (data, (d / "out.wav").read_bytes(), result)
+        out[block] = (data, digest(d / bytes_of), result)
     return out
 
 
 def _assert_identical(runs):
     blocks = list(runs)
-    ref_data, ref_bytes, ref_result = runs[blocks[0]]
+    ref_data, ref_digest, ref_result = runs[blocks[0]]
     for b in blocks[1:]:
-        data, raw, result = runs[b]
+        data, dig, result = runs[b]
         assert data.shape == ref_data.shape, f"block {b}"
         # Bit-identical: compare the float64 arrays exactly, and the file bytes.
         assert np.array_equal(data, ref_data), f"block {b} differs from block {blocks[0]}"
-        assert raw == ref_bytes, f"block {b}: file bytes differ"
+        assert dig == ref_digest, f"block {b}: file bytes differ"
         assert result.samples == ref_result.samples
 
 
@@ -131,13 +143,13 @@ def test_other_scenes_are_block_size_invariant(tmp_path, scene):
         path = "out.wav"
         subtype = "PCM_16"
     """
-    _assert_identical(_runs(tmp_path, text, (7, 8192, 65_536)))
+    _assert_identical(_runs(tmp_path, text, (7, 8192, 65_536), bytes_of="out.wav"))
 
 
 def test_file_graph_is_block_size_invariant(tmp_path):
     src = tmp_path / "take.wav"
     original = make_audio(src, frames=12_345, channels=2, rate=44_100, subtype="PCM_24")
-    runs = _runs(tmp_path, _file_graph(str(src)), (1, 7, 256, 65_536))
+    runs = _runs(tmp_path, _file_graph(str(src)), (1, 7, 256, 65_536), bytes_of="out.wav")
     _assert_identical(runs)
     data = runs[1][0]
     # PCM_24 in, PCM_24 out: the samples pass through unchanged, at the file's own rate.
@@ -154,7 +166,8 @@ def test_block_option_of_the_cli_gives_identical_files(tmp_path):
         proc = cli(*args)
         assert proc.returncode == 0, proc.stderr
         outs.append(d / "out.wav")
-    assert outs[0].read_bytes() == outs[1].read_bytes()
+    assert digest(outs[0]) == digest(outs[1])  # PCM_24 here: no PEAK chunk
+    assert digest(outs[0].parent / "pcm.wav") == digest(outs[1].parent / "pcm.wav")
     api = tmp_path / "api"
     run_file(g, api, block=256)
     assert np.array_equal(read_audio(outs[0])[0], read_audio(api / "out.wav")[0])
@@ -172,6 +185,7 @@ def test_report_of_a_complete_run(tmp_path):
     assert report["sample_rate"] == 8000
     assert report["audio_seconds"] == pytest.approx(0.5)
     assert report["outputs"]["keep"]["frames"] == 4000
+    assert report["outputs"]["keep_pcm"]["frames"] == 4000
     assert report["outputs"]["keep"]["path"] == str(tmp_path / "o" / "out.wav")
     assert not list((tmp_path / "o").glob(".*")), "temporary files left behind"
 

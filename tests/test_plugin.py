@@ -215,8 +215,7 @@ def test_plugin_kind_clashing_with_a_built_in(plugin_path):
 def test_cli_lists_and_runs_a_plugin_kind(tmp_path):
     root = tmp_path / "site"
     install_plugin(root, "sqplug-cli", {"halve": "sqplug_cli:Halve"}, halve_code())
-    env = {"PYTHONPATH": str(root)}
-    proc = cli("nodes", "halve", env=env)
+    proc = cli("nodes", "halve", pythonpath=[root])
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.startswith("halve: Halves the signal")
     assert "input [input]: text; required" in proc.stdout
@@ -238,7 +237,7 @@ def test_cli_lists_and_runs_a_plugin_kind(tmp_path):
         path = "half.wav"
         subtype = "DOUBLE"
     """)
-    proc = cli("run", g, "--out", tmp_path / "o", "--quiet", env=env)
+    proc = cli("run", g, "--out", tmp_path / "o", "--quiet", pythonpath=[root])
     assert proc.returncode == 0, proc.stderr
     y, _ = read_audio(tmp_path / "o" / "half.wav")
     assert y.shape == (2000, 1)
@@ -255,7 +254,7 @@ def test_cli_reports_a_broken_plugin_in_one_line(tmp_path):
                    textwrap.dedent("""
                        import streamq_no_such_dependency
                    """))
-    proc = cli("nodes", env={"PYTHONPATH": str(root)})
+    proc = cli("nodes", pythonpath=[root])
     assert proc.returncode == 2
     assert "Traceback" not in proc.stderr
     lines = error_lines(proc.stderr)

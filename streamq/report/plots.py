@@ -256,11 +256,23 @@ def plot_snr(meter_id: str, meter: dict[str, Any], series: dict[str, np.ndarray]
         ax.stairs(hi, xs, baseline=lo, fill=True, color=colour, alpha=0.22, linewidth=0)
         ax.stairs(mean, xs, color=colour, linewidth=1.0, label=label, baseline=None)
 
-    snr = series.get("snr_db", nan)
+    snr_raw = series.get("snr_db", nan)
+    snr = np.where(np.isfinite(snr_raw), snr_raw, np.nan)
     seg = series.get("segsnr_db", nan)
     trace(top, snr, SIGNAL, "SNR")
     trace(top, seg, SEGSNR, "segmental SNR")
     handles, _ = top.get_legend_handles_labels()
+    # rows without any noise (SNR = +inf) or with a silent reference (SNR = -inf)
+    for value, y, marker, label in ((np.inf, 0.90, "^", "row without noise (SNR infinite)"),
+                                    (-np.inf, 0.03, "v", "silent reference row (SNR -inf)")):
+        hit = snr_raw == value
+        if hit.any():
+            starts = t[hit] if k == 1 else _bin(t, k, "min")[_bin(hit.astype(float), k, "max") > 0]
+            xm = (np.unique(starts) + 0.5 * k * row_s) / div   # mid-row
+            top.plot(xm, np.full(xm.shape, y), transform=top.get_xaxis_transform(),
+                     linestyle="none", marker=marker, markersize=4, color=SIGNAL, alpha=0.8)
+            handles.append(Line2D([], [], color=SIGNAL, linestyle="none", marker=marker,
+                                  markersize=4, label=f"{label}: {int(hit.sum())}"))
     overall = meter.get("snr_db")
     if overall is not None and math.isfinite(overall):
         top.axhline(overall, color=INK, linestyle=":", linewidth=1.0)
@@ -285,6 +297,8 @@ def plot_snr(meter_id: str, meter: dict[str, Any], series: dict[str, np.ndarray]
 
     sig = series.get("signal_dbfs", nan)
     noi = series.get("noise_dbfs", nan)
+    sig = np.where(np.isfinite(sig), sig, np.nan)   # digital silence: a gap in the line
+    noi = np.where(np.isfinite(noi), noi, np.nan)
     trace(bottom, sig, SIGNAL, "signal level")
     trace(bottom, noi, NOISE, "noise level")
     bottom.set_ylabel("level (dBFS)")

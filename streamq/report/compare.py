@@ -1,0 +1,354 @@
+"""``streamq compare``: several quantizers over one recording in a single pass,
+ranked by SNR.
+
+The command builds one fan-out graph (one file-source, one pdf-estimator when
+an adaptive method is asked for, and an encoder, decoder and error-meter per
+method), runs it once, and prints a table sorted by SNR with segmental SNR,
+total bits per sample including side information, index entropy and the
+number of codebook updates.
+
+What each method name means here (all at ``--bits`` bits, i.e. 2**bits levels):
+
+``uniform``
+    fixed uniform quantizer over +-``loading`` times the file's RMS (default
+    +-4 RMS, the usual loading for Gaussian-like material), never wider than
+    full scale: designs with ``scale = min(rms, 1/loading)``.
+``mu-law``, ``a-law``
+    continuous compander over full scale (mu = 255, A = 87.6): the encoder
+    loads a compander at 4 times its ``scale``, so ``scale = 0.25``.
+``lloyd-max``
+    fixed Lloyd-Max codebook trained on the file itself (encoder field ``train``).
+``lloyd-max-adaptive``
+    Lloyd-Max redesigned every hop from the trailing window (default 500 ms
+    window, 100 ms hop); side information counted.
+``optimal``
+    fixed, globally optimal (dynamic programming), trained on the file itself.
+``ecsq``
+    fixed, entropy-constrained, trained on the file itself, aiming at
+    ``--entropy`` bits/sample (default ``bits - 0.5``).
+``g711-mu``, ``g711-a``
+    the 8-bit G.711 tables (only with ``--bits 8``).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+import tempfile
+from pathlib import Path
+from typing import Any, Callable
+
+from streamq.errors import StreamqError
+
+METHODS = ("uniform", "mu-law", "a-law", "lloyd-max", "lloyd-max-adaptive", "optimal", "ecsq")
+EXTRA_METHODS = ("g711-mu", "g711-a")
+EXIT_OK, EXIT_INTERRUPTED = 0, 130
+
+
+# -- the graph -------------------------------------------------------------------------
+
+def toml_string(text: str) -> str:
+    """A TOML basic string holding ``text`` exactly."""
+    out = ['"']
+    for ch in text:
+        o = ord(ch)
+        if ch == '"':
+            out.append('\\"')
+        elif ch == "\\":
+            out.append("\\\\")
+        elif o < 0x20 or o == 0x7F:
+            out.append(f"\\u{o:04X}")
+        else:
+            out.append(ch)
+    out.append('"')
+    return "".join(out)
+
+
+def toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        return repr(v)
+    return toml_string(str(v))
+
+
+def parse_methods(text: str, bits: int) -> list[str]:
+    """The comma-separated method list, checked; duplicates dropped."""
+    out: list[str] = []
+    for raw in text.split(","):
+        m = raw.strip().lower()
+        if not m:
+            continue
+        if m not in METHODS + EXTRA_METHODS:
+            raise StreamqError(f"--methods: unknown method '{m}' (choose from "
+                               f"{', '.join(METHODS + EXTRA_METHODS)})")
+        if m in EXTRA_METHODS and bits != 8:
+            raise StreamqError(f"--methods: {m} is the 8-bit G.711 table; use --bits 8")
+        if m not in out:
+            out.append(m)
+    if not out:
+        raise StreamqError("--methods: give at least one method")
+    return out
+
+
+def encoder_settings(method: str, bits: int, audio: Path, rms: float, *,
+                     entropy: float | None = None, loading: float = 4.0) -> dict[str, Any]:
+    """The encoder node's fields for one compared method (besides use/input/pdf)."""
+    if method == "uniform":
+        return {"method": "uniform", "bits": bits, "loading": float(loading),
+                "scale": min(float(rms), 1.0 / float(loading))}
+    if method in ("mu-law", "a-law"):
+        # the encoder loads a compander at 4 x scale; scale 0.25 puts its peak at full scale
+        return {"method": method, "bits": bits, "scale": 0.25}
+    if method in EXTRA_METHODS:
+        return {"method": method, "bits": 8}
+    if method == "lloyd-max-adaptive":
+        return {"method": "lloyd-max", "bits": bits, "adapt": "trailing"}
+    s: dict[str, Any] = {"method": method, "bits": bits, "train": str(audio)}
+    if method == "ecsq":
+        s["entropy"] = float(entropy if entropy is not None else bits - 0.5)
+    return s
+
+
+def build_compare_toml(audio: Path, methods: list[str], settings: dict[str, dict[str, Any]], *,
+                       window: str = "500 ms", hop: str = "100 ms") -> str:
+    """The fan-out graph as TOML text: one source, an estimator when needed, and an
+    encoder, decoder and meter per method (the meter's id is the method name)."""
+    lines = ["# made by `streamq compare`", "[graph]", 'name = "compare"', "",
+             "[nodes.feed]", 'use = "file-source"', f"path = {toml_string(str(audio))}", ""]
+    adaptive = any(s.get("adapt", "fixed") != "fixed" for s in settings.values())
+    if adaptive:
+        lines += ["[nodes.stats]", 'use = "pdf-estimator"', 'input = "feed"',
+                  f"window = {toml_string(window)}", f"hop = {toml_string(hop)}", ""]
+    for m in methods:
+        s = settings[m]
+        lines += [f"[nodes.{m}-enc]", 'use = "encoder"', 'input = "feed"']
+        if s.get("adapt", "fixed") != "fixed":
+            lines.append('pdf = "stats"')
+        lines += [f"{k} = {toml_value(v)}" for k, v in s.items()]
+        lines += ["", f"[nodes.{m}-dec]", 'use = "decoder"', f'input = "{m}-enc"', "",
+                  f"[nodes.{m}]", 'use = "error-meter"', 'reference = "feed"',
+                  f'input = "{m}-dec"', ""]
+    return "\n".join(lines)
+
+
+def file_rms(path: Path) -> tuple[float, Any]:
+    """RMS over every sample of every channel (full scale = 1), and the file's info."""
+    import numpy as np
+
+    from streamq.engine.audiofile import open_for_reading
+    f, info = open_for_reading(path, StreamqError)
+    total = 0.0
+    n = 0
+    with f:
+        for block in f.blocks(blocksize=65_536, dtype="float64", always_2d=True):
+            if not np.all(np.isfinite(block)):
+                raise StreamqError(f"{path}: holds NaN or infinite samples")
+            total += float(np.einsum("ij,ij->", block, block))
+            n += block.size
+    return (math.sqrt(total / n) if n else 0.0), info
+
+
+# -- running -----------------------------------------------------------------------------
+
+def compare(audio: str | Path, bits: int, methods: list[str] | str = METHODS, *,
+            out_dir: str | Path | None = None, entropy: float | None = None,
+            loading: float = 4.0, window: str = "500 ms", hop: str = "100 ms",
+            progress: Callable[[int, int | None], None] | None = None,
+            handle_signals: bool = True, plots: bool = True) -> dict[str, Any]:
+    """Run every method over ``audio`` in one pass and return the comparison.
+
+    Parameters
+    ----------
+    audio : the recording (any format libsndfile reads).
+    bits : index word length of every method.
+    methods : method names (see the module docstring) or a comma-separated string.
+    out_dir : keep the run here (graph.toml, report.json, CSV files, plots,
+        report.html); default: a temporary folder that is removed afterwards.
+    entropy : ecsq target in bits/sample (default ``bits - 0.5``).
+    loading : uniform range in multiples of the file's RMS.
+
+    Returns
+    -------
+    A JSON-able dict: the file's facts, ``complete`` and ``methods``, a list
+    sorted by SNR (best first) of per-method figures and encoder settings.
+    """
+    from streamq.engine.graph import parse_graph
+    from streamq.engine.scheduler import build, run_offline
+
+    audio = Path(audio).expanduser().resolve()
+    if not 1 <= int(bits) <= 16:
+        raise StreamqError(f"--bits: give 1 to 16 bits, got {bits}")
+    bits = int(bits)
+    if isinstance(methods, str):
+        methods = parse_methods(methods, bits)
+    else:
+        methods = parse_methods(",".join(methods), bits)
+    if entropy is not None and not 0 < entropy <= bits:
+        raise StreamqError(f"--entropy: give a target above 0 and at most --bits ({bits}), "
+                           f"got {entropy}")
+    if "ecsq" in methods and entropy is None and bits - 0.5 <= 0:
+        raise StreamqError("--entropy: needed for ecsq at this word length")
+    if not loading > 0:
+        raise StreamqError(f"--loading: must be above 0, got {loading}")
+    rms, info = file_rms(audio)
+    if rms <= 0:
+        raise StreamqError(f"{audio}: the recording is silent (RMS 0); nothing to compare")
+    settings = {m: encoder_settings(m, bits, audio, rms, entropy=entropy, loading=loading)
+                for m in methods}
+    text = build_compare_toml(audio, methods, settings, window=window, hop=hop)
+
+    with tempfile.TemporaryDirectory(prefix="streamq-compare-") as tmp:
+        out = Path(out_dir) if out_dir is not None else Path(tmp)
+        if out_dir is not None:
+            from streamq.runner import prepare_out_dir
+            prepare_out_dir(out)
+        (out / "graph.toml").write_text(text, encoding="utf-8")
+        graph = parse_graph(text, out / "graph.toml")
+        built = build(graph, out)
+        result = run_offline(built, progress=progress, handle_signals=handle_signals)
+        report = result.report
+        if out_dir is not None and plots:
+            from streamq.runner import write_report_pages
+            write_report_pages(result)
+
+    from streamq.report.page import overload_share
+    rows = []
+    for m in methods:
+        r = report["meters"].get(m, {})
+        rows.append({
+            "method": m,
+            "snr_db": r.get("snr_db"),
+            "segsnr_db": r.get("segsnr_db"),
+            "bits_per_sample": r.get("bits_per_sample"),
+            "fixed_rate_bits": r.get("fixed_rate_bits"),
+            "side_info_bits_per_sample": r.get("side_info_bits_per_sample"),
+            "entropy_bits": r.get("entropy_bits"),
+            "entropy_bits_per_sample_with_side_info": r.get("entropy_bits_per_sample_with_side_info"),
+            "codebook_updates": r.get("codebook_updates"),
+            "overload_share": overload_share(r),
+            "samples": r.get("samples"),
+            "settings": settings[m],
+        })
+    rows.sort(key=lambda row: -_num(row["snr_db"]))
+    return {
+        "file": str(audio),
+        "bits": bits,
+        "sample_rate": info.samplerate,
+        "channels": info.channels,
+        "frames": info.frames,
+        "seconds": info.frames / info.samplerate,
+        "rms": rms,
+        "complete": result.complete,
+        "last_sample": result.samples,
+        "run_seconds": result.seconds,
+        "out_dir": str(out_dir) if out_dir is not None else None,
+        "methods": rows,
+    }
+
+
+def _num(v) -> float:
+    if v is None:
+        return -math.inf
+    return float(v)
+
+
+def table_lines(res: dict[str, Any]) -> list[str]:
+    """The comparison as a fixed-width text table, best SNR first."""
+    head = (f"{Path(res['file']).name}: {res['bits']} bits, {res['seconds']:.2f} s, "
+            f"{res['sample_rate']} Hz, {res['channels']} channel(s), RMS "
+            f"{20 * math.log10(res['rms']):.1f} dBFS")
+    if not res["complete"]:
+        head += f"; STOPPED EARLY at sample {res['last_sample']} (figures cover that much)"
+    cols = [("method", 20, "<"), ("SNR dB", 8, ">"), ("seg SNR dB", 11, ">"),
+            ("bits/sample", 12, ">"), ("entropy+side", 13, ">"), ("updates", 8, ">"),
+            ("overload", 9, ">")]
+    lines = [head, "  ".join(f"{name:{al}{w}}" for name, w, al in cols),
+             "  ".join("-" * w for _, w, _ in cols)]
+
+    def f(v, fmt):
+        if v is None or (isinstance(v, float) and not math.isfinite(v)):
+            return "inf" if v == math.inf else "n/a"
+        return fmt.format(v)
+
+    for r in res["methods"]:
+        vals = [r["method"], f(r["snr_db"], "{:.2f}"), f(r["segsnr_db"], "{:.2f}"),
+                f(r["bits_per_sample"], "{:.4f}"),
+                f(r["entropy_bits_per_sample_with_side_info"], "{:.4f}"),
+                f(r["codebook_updates"], "{:d}"),
+                f(None if r["overload_share"] is None else 100 * r["overload_share"], "{:.3f}%")]
+        lines.append("  ".join(f"{v:{al}{w}}" for v, (_, w, al) in zip(vals, cols)))
+    lines.append("bits/sample = fixed-rate index bits + side information; entropy+side = index "
+                 "entropy + side information")
+    return lines
+
+
+def _json_ready(o):
+    if isinstance(o, float) and not math.isfinite(o):
+        return None
+    if isinstance(o, dict):
+        return {k: _json_ready(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_json_ready(v) for v in o]
+    return o
+
+
+# -- the command -----------------------------------------------------------------------------
+
+def add_parser(subparsers) -> None:
+    p = subparsers.add_parser(
+        "compare", help="run several quantizers over one recording in one pass, ranked by SNR",
+        description="Quantize one recording with several methods at the same word length in a "
+                    "single pass and print them ranked by SNR. uniform spans +-LOADING times the "
+                    "file's RMS (never beyond full scale); lloyd-max, optimal and ecsq are fixed "
+                    "codebooks trained on the file itself; lloyd-max-adaptive is retrained every "
+                    "hop from the trailing window.")
+    p.add_argument("audio", type=Path, metavar="AUDIOFILE", help="the recording to compare on")
+    p.add_argument("--bits", type=int, required=True, help="index word length of every method")
+    p.add_argument("--methods", default=",".join(METHODS),
+                   help=f"comma-separated (default: {','.join(METHODS)}; also "
+                        f"{','.join(EXTRA_METHODS)} with --bits 8)")
+    p.add_argument("--entropy", type=float, help="ecsq target, bits/sample (default: bits - 0.5)")
+    p.add_argument("--loading", type=float, default=4.0,
+                   help="uniform: half-range in multiples of the file's RMS (default 4)")
+    p.add_argument("--window", default="500 ms", help="adaptive: estimator window (default 500 ms)")
+    p.add_argument("--hop", default="100 ms", help="adaptive: time between redesigns "
+                                                  "(default 100 ms)")
+    p.add_argument("--json", action="store_true", help="print the comparison as JSON")
+    p.add_argument("--out", type=Path, help="keep the run (graph.toml, report.json, CSV files, "
+                                            "plots, report.html) in this folder")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=run)
+
+
+def run(args) -> int:
+    import soundfile as sf
+
+    from streamq.runner import Progress
+    bar = None
+    try:
+        info = sf.info(str(args.audio))
+        bar = Progress(info.frames, info.samplerate, args.quiet or args.json, "compare")
+    except Exception:
+        pass  # compare() names the problem with the file
+    try:
+        res = compare(args.audio, args.bits, args.methods, out_dir=args.out, entropy=args.entropy,
+                      loading=args.loading, window=args.window, hop=args.hop, progress=bar)
+    finally:
+        if bar is not None:
+            bar.close()
+    if args.json:
+        print(json.dumps(_json_ready(res), indent=2))
+    else:
+        for line in table_lines(res):
+            print(line)
+        if res["out_dir"]:
+            print(f"run kept in {res['out_dir']}/ (report.html, report.json, graph.toml)")
+    if not res["complete"]:
+        print(f"streamq: interrupted at sample {res['last_sample']}; the table covers the audio "
+              f"up to there", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    return EXIT_OK

@@ -78,11 +78,16 @@ def _set_override(raw: dict[str, Any], item: str, label: str) -> str | None:
         value = value_text.strip()
     node_id, fld = path
     if node_id == "graph":
-        raw.setdefault("graph", {})[fld] = value
+        header = raw.setdefault("graph", {})
+        if not isinstance(header, dict):
+            return f"{label}: --set {item!r}: 'graph' is not a table"
+        header[fld] = value
         return None
     nodes = raw.get("nodes")
     if not isinstance(nodes, dict) or node_id not in nodes:
         return f"{label}: --set {item!r}: there is no node '{node_id}'"
+    if not isinstance(nodes[node_id], dict):
+        return f"{label}: --set {item!r}: node '{node_id}' is not a table of fields"
     nodes[node_id][fld] = value
     return None
 

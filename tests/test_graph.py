@@ -524,6 +524,15 @@ def test_set_bad_syntax(tmp_path, item):
     assert_names(line, g, "--set", item, "NODE.FIELD=VALUE")
 
 
+@pytest.mark.parametrize("text, item, expect", [
+    ("[nodes]\nfeed = 3\n", "feed.seconds=2", "node 'feed' is not a table"),
+    ("graph = 3\n[nodes.feed]\nuse = 'test-signal'\n", "graph.name=x", "'graph' is not a table"),
+])
+def test_set_into_something_that_is_not_a_table(tmp_path, text, item, expect):
+    g, lines = problems(tmp_path, text, [item])
+    assert_names(lines[0], g, "--set", item, expect)
+
+
 # -- many problems at once ------------------------------------------------------------
 
 def test_several_problems_reported_at_once(tmp_path):

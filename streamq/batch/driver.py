@@ -26,7 +26,7 @@ from streamq.engine.graph import Graph, parse_graph
 from streamq.errors import StreamqError
 
 EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
-POLL = 0.25
+POLL = 0.1
 
 
 def pick_batch_input(graph: Graph) -> str:
@@ -107,6 +107,31 @@ class BatchProgress:
             self.bar.close()
 
 
+class _signals_held:
+    """Block SIGINT/SIGTERM in this thread (and so in the processes it starts)
+    for the duration; a signal that came meanwhile is handled on exit."""
+
+    SIGNALS = (signal.SIGINT, signal.SIGTERM)
+
+    def __enter__(self):
+        self.ok = hasattr(signal, "pthread_sigmask")
+        if self.ok:
+            # multiprocessing's resource tracker unblocks these signals after
+            # starting its own process: start it first, outside the block.
+            try:
+                from multiprocessing import resource_tracker
+                resource_tracker.ensure_running()
+            except Exception:
+                pass
+            self.old = signal.pthread_sigmask(signal.SIG_BLOCK, self.SIGNALS)
+        return self
+
+    def __exit__(self, *exc):
+        if self.ok:
+            signal.pthread_sigmask(signal.SIG_SETMASK, self.old)
+        return False
+
+
 def _result_of(job: dict[str, Any], fut) -> dict[str, Any]:
     base = {"input": job["input"], "folder": job["folder"], "samples": 0, "audio_seconds": 0.0,
             "seconds": 0.0}
@@ -119,7 +144,7 @@ def _result_of(job: dict[str, Any], fut) -> dict[str, Any]:
 
 
 def run_batch(args) -> int:
-    from streamq.batch.engines import make_engine, parse_cluster_address
+    from streamq.batch.engines import parse_cluster_address
     from streamq.runner import prepare_out_dir
 
     overrides = list(getattr(args, "overrides", []) or [])
@@ -163,39 +188,101 @@ def run_batch(args) -> int:
                      "stop_file": str(stop_file), "run_id": run_id})
     reused = len(inputs) - len(jobs)
 
-    engine = None
-    engine_name = "none (every file already done)"
-    stopping = killed = False
-    processed_audio = 0.0
-    t0 = time.perf_counter()
-    stop_requests: list[int] = []
+    with _StopRequests() as stop:
+        run = _run_jobs(jobs, states, args, stop, BatchProgress(len(inputs), reused, quiet,
+                                                                graph.name), stop_file)
+        stop.hard = False  # from here on a Ctrl-C changes nothing: finish the summary
+        for inp in inputs:  # finished, but not heard of before a hard stop
+            st = states[str(inp)]
+            if st["status"] == "not run" and is_done(Path(st["folder"]), inp, setup):
+                st["status"] = "done"
+        entries = [file_entry(str(inp), states[str(inp)]["folder"], states[str(inp)]["status"],
+                              states[str(inp)]["error"], states[str(inp)]["reused"])
+                   for inp in inputs]
+        counts: dict[str, int] = {}
+        for e in entries:
+            counts[e["status"]] = counts.get(e["status"], 0) + 1
+        done_audio = sum(e["audio_seconds"] or 0.0 for e in entries if e["status"] == "done")
+        head = {"graph": graph.name, "graph_file": str(graph_path), "batch_input": node,
+                "overrides": overrides, "engine": run["engine"], "out_dir": str(out),
+                "complete": counts.get("done", 0) == len(entries), "files_total": len(entries),
+                "counts": counts, "reused": reused, "audio_seconds_done": done_audio,
+                "this_run": {"files_run": len(jobs), "audio_seconds": run["audio"],
+                             "wall_seconds": run["wall"]}}
+        paths = write_summary(out, head, entries)
+        failed = [e for e in entries if e["status"] == "failed"]
+        # A stop that came after the last file finished changed nothing.
+        stopped = bool(stop.requests) and counts.get("done", 0) + len(failed) < len(entries)
+        if not quiet:
+            _print_summary(head, paths, stopped)
+        _print_failures(failed, paths[0])
+        if stopped:
+            print(f"streamq: interrupted; {counts.get('done', 0)} finished files are kept, run the "
+                  f"same command again to do the rest", file=sys.stderr)
+            return EXIT_INTERRUPTED
+        return EXIT_SOME_FAILED if failed else EXIT_OK
 
-    def on_signal(signum, frame):
-        if stop_requests:
+
+class _StopRequests:
+    """SIGINT/SIGTERM handling for the whole batch: the first signal asks for a
+    clean stop; another one, while ``hard`` is set, raises KeyboardInterrupt."""
+
+    def __init__(self):
+        self.requests: list[int] = []
+        self.hard = True
+        self.old: dict = {}
+
+    def _on_signal(self, signum, frame):
+        if self.requests and self.hard:
             raise KeyboardInterrupt
-        stop_requests.append(signum)
+        self.requests.append(signum)
 
-    old_handlers = {}
-    bar = BatchProgress(len(inputs), reused, quiet, graph.name)
-    try:
+    def __enter__(self):
         for sig in (signal.SIGINT, signal.SIGTERM):
             try:
-                old_handlers[sig] = signal.signal(sig, on_signal)
-            except ValueError:  # not the main thread
+                self.old[sig] = signal.signal(sig, self._on_signal)
+            except ValueError:  # not the main thread: no signal handling
                 pass
+        return self
+
+    def __exit__(self, *exc):
+        for sig, h in self.old.items():
+            signal.signal(sig, h)
+        return False
+
+
+def _run_jobs(jobs, states, args, stop: _StopRequests, bar: BatchProgress,
+              stop_file: Path) -> dict[str, Any]:
+    """Run ``jobs`` on the chosen engine, updating ``states``; returns the engine's
+    name, the audio seconds done and the wall time."""
+    from streamq.batch.engines import make_engine
+    engine = None
+    engine_name = "none (every file already done)"
+    killed = stopping = False
+    audio = 0.0
+    t0 = time.perf_counter()
+    try:
         if jobs:
-            engine = make_engine(args.workers, args.cluster, len(jobs))
-            engine_name = engine.describe()
             done_q: queue.Queue = queue.Queue()
             submitted = 0
-            for job in jobs:
-                if stop_requests:
-                    break
-                engine.submit(job, done_q)
-                submitted += 1
+            # Worker processes started now inherit a blocked Ctrl-C, so a Ctrl-C
+            # in the terminal (sent to the whole process group) reaches only this
+            # process, which then stops the workers cleanly; it is handled here
+            # as soon as the workers are started.
+            with _signals_held():
+                try:
+                    engine = make_engine(args.workers, args.cluster, len(jobs))
+                    engine_name = engine.describe()
+                    for job in jobs:
+                        engine.submit(job, done_q)
+                        submitted += 1
+                except StreamqError:
+                    raise
+                except Exception as exc:
+                    raise StreamqError(f"cannot start the batch workers: {one_line(exc)}") from None
             received = 0
             while received < submitted:
-                if stop_requests and not stopping:
+                if stop.requests and not stopping:
                     stopping = True
                     stop_file.touch()
                     engine.cancel_pending()
@@ -207,20 +294,21 @@ def run_batch(args) -> int:
                     continue
                 received += 1
                 res = _result_of(job, fut)
+                if stop.requests and res["status"] == "failed" and \
+                        res["error"].startswith("worker failed"):
+                    # workers that got the terminal's Ctrl-C too
+                    res.update(status="interrupted", error="stopped: " + res["error"])
                 states[job["input"]].update(status=res["status"], error=res.get("error"))
                 if res["status"] == "done":
-                    processed_audio += float(res.get("audio_seconds") or 0.0)
+                    audio += float(res.get("audio_seconds") or 0.0)
                     bar.file_done(float(res.get("audio_seconds") or 0.0))
-                elif res["status"] in ("failed",):
+                elif res["status"] == "failed":
                     bar.file_done(0.0)
-            stopping = stopping or bool(stop_requests)
-    except KeyboardInterrupt:
-        stopping = killed = True
+    except KeyboardInterrupt:  # asked twice: stop at once
+        killed = True
         if engine is not None:
             engine.kill()
     finally:
-        for sig, h in old_handlers.items():
-            signal.signal(sig, h)
         bar.close()
         if engine is not None and not killed:
             engine.close()
@@ -228,50 +316,37 @@ def run_batch(args) -> int:
             stop_file.unlink()
         except OSError:
             pass
-    wall = time.perf_counter() - t0
+    return {"engine": engine_name, "audio": audio, "wall": time.perf_counter() - t0}
 
-    entries = [file_entry(str(inp), states[str(inp)]["folder"], states[str(inp)]["status"],
-                          states[str(inp)]["error"], states[str(inp)]["reused"]) for inp in inputs]
-    counts: dict[str, int] = {}
-    for e in entries:
-        counts[e["status"]] = counts.get(e["status"], 0) + 1
-    done_audio = sum(e["audio_seconds"] or 0.0 for e in entries if e["status"] == "done")
-    head = {"graph": graph.name, "graph_file": str(graph_path), "batch_input": node,
-            "overrides": overrides, "engine": engine_name, "out_dir": str(out),
-            "complete": counts.get("done", 0) == len(entries), "files_total": len(entries),
-            "counts": counts, "reused": reused, "audio_seconds_done": done_audio,
-            "this_run": {"files_run": len(jobs), "audio_seconds": processed_audio,
-                         "wall_seconds": wall}}
-    paths = write_summary(out, head, entries)
 
-    failed = [e for e in entries if e["status"] == "failed"]
-    if not quiet:
-        speed = processed_audio / wall if wall > 0 else 0.0
-        print(f"{graph.name}: {counts.get('done', 0)} of {len(entries)} files done "
-              f"({reused} from an earlier run), {len(failed)} failed"
-              + (f", {counts.get('interrupted', 0) + counts.get('not run', 0)} not finished"
-                 if stopping else "")
-              + f"; {processed_audio / 3600:.2f} h of audio run in {wall:.1f} s "
-                f"({speed:,.0f}x real time) on {engine_name}")
-        import json
-        tot = json.loads(paths[1].read_text(encoding="utf-8"))["totals"]
-        for mid, t in tot.items():
-            def f(key, fmt="{:.2f}"):
-                v = t.get(key)
-                return "n/a" if v is None else fmt.format(v)
-            print(f"  {mid}: SNR {f('snr_db')} dB over all files (per file {f('snr_db_min')} to "
-                  f"{f('snr_db_max')} dB, median {f('snr_db_median')}), segmental SNR "
-                  f"{f('segsnr_db')} dB, {f('bits_per_sample', '{:.3f}')} bits/sample")
-        print(f"  summary: {', '.join(str(p) for p in paths)}")
-    if failed:
-        print(f"streamq: {len(failed)} file(s) failed:", file=sys.stderr)
-        for e in failed[:20]:
-            err = e["error"] or "unknown error"
-            print(f"  {err if e['input'] in err else e['input'] + ': ' + err}", file=sys.stderr)
-        if len(failed) > 20:
-            print(f"  ... and {len(failed) - 20} more (see {paths[0]})", file=sys.stderr)
-    if stopping:
-        print(f"streamq: interrupted; {counts.get('done', 0)} finished files are kept, run the "
-              f"same command again to do the rest", file=sys.stderr)
-        return EXIT_INTERRUPTED
-    return EXIT_SOME_FAILED if failed else EXIT_OK
+def _print_summary(head: dict[str, Any], paths: list[Path], stopped: bool) -> None:
+    import json
+    counts, run = head["counts"], head["this_run"]
+    failed = counts.get("failed", 0)
+    unfinished = counts.get("interrupted", 0) + counts.get("not run", 0)
+    speed = run["audio_seconds"] / run["wall_seconds"] if run["wall_seconds"] > 0 else 0.0
+    print(f"{head['graph']}: {counts.get('done', 0)} of {head['files_total']} files done "
+          f"({head['reused']} from an earlier run), {failed} failed"
+          + (f", {unfinished} not finished" if stopped else "")
+          + f"; {run['audio_seconds'] / 3600:.2f} h of audio run in {run['wall_seconds']:.1f} s "
+            f"({speed:,.0f}x real time) on {head['engine']}")
+    tot = json.loads(paths[1].read_text(encoding="utf-8"))["totals"]
+    for mid, t in tot.items():
+        def f(key, fmt="{:.2f}"):
+            v = t.get(key)
+            return "n/a" if v is None else fmt.format(v)
+        print(f"  {mid}: SNR {f('snr_db')} dB over all files (per file {f('snr_db_min')} to "
+              f"{f('snr_db_max')} dB, median {f('snr_db_median')}), segmental SNR "
+              f"{f('segsnr_db')} dB, {f('bits_per_sample', '{:.3f}')} bits/sample")
+    print(f"  summary: {', '.join(str(p) for p in paths)}")
+
+
+def _print_failures(failed: list[dict[str, Any]], table: Path) -> None:
+    if not failed:
+        return
+    print(f"streamq: {len(failed)} file(s) failed:", file=sys.stderr)
+    for e in failed[:20]:
+        err = e["error"] or "unknown error"
+        print(f"  {err if e['input'] in err else e['input'] + ': ' + err}", file=sys.stderr)
+    if len(failed) > 20:
+        print(f"  ... and {len(failed) - 20} more (see {table})", file=sys.stderr)

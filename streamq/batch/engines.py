@@ -25,6 +25,8 @@ from streamq.errors import StreamqError
 CLUSTER_EXTRA = "streamq[cluster]"
 _TCP = re.compile(r"^tcp://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):(\d{1,5})$")
 _LOCAL = re.compile(r"^local:(\d+)$")
+#: Seconds to wait for a Dask scheduler to answer.
+CONNECT_TIMEOUT = 10.0
 
 
 def _start_method() -> str:
@@ -90,7 +92,7 @@ def parse_cluster_address(address: str) -> tuple[str, Any]:
 class DaskCluster:
     """The same work on a Dask distributed cluster (optional extra ``streamq[cluster]``)."""
 
-    def __init__(self, address: str, connect_timeout: float = 10.0):
+    def __init__(self, address: str):
         kind, value = parse_cluster_address(address)
         try:
             import distributed
@@ -107,7 +109,7 @@ class DaskCluster:
                     dashboard_address=None)
                 self.client = distributed.Client(self.cluster, set_as_default=False)
             else:
-                self.client = distributed.Client(value, timeout=connect_timeout,
+                self.client = distributed.Client(value, timeout=CONNECT_TIMEOUT,
                                                  set_as_default=False)
         except Exception as exc:
             self.close()

@@ -1,0 +1,419 @@
+"""`streamq batch`: one graph over an archive of files, on a local process pool
+and on a real Dask cluster, resumable.
+
+Everything here is real: audio files written with soundfile, the command run
+as a subprocess (or through ``streamq.cli.main``), a Dask scheduler with two
+worker processes on loopback, and a real SIGINT.
+
+The reference for a file's results is a plain single run of the same graph
+on that file (``streamq.engine.scheduler.run_offline``): a batch must give
+exactly what running the files one by one gives, whichever engine ran it.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from streamq.batch.inputs import expand_inputs, folder_name
+from streamq.cli import main as cli_main
+from streamq.engine.graph import load_graph
+from streamq.engine.scheduler import build, run_offline
+
+REPO = Path(__file__).resolve().parents[1]
+RATE = 16_000
+
+# The replay chain (adaptive Lloyd-Max, retrained every 100 ms from the last
+# 500 ms, meter, decoded file), as in graphs/replay.toml.
+CHAIN = """\
+[graph]
+name = "archive-check"
+
+[nodes.feed]
+use = "file-source"
+path = "placeholder.wav"
+
+[nodes.stats]
+use = "pdf-estimator"
+input = "feed"
+window = "500 ms"
+hop = "100 ms"
+
+[nodes.enc]
+use = "encoder"
+input = "feed"
+pdf = "stats"
+method = "lloyd-max"
+bits = 4
+adapt = "trailing"
+
+[nodes.dec]
+use = "decoder"
+input = "enc"
+
+[nodes.noise]
+use = "error-meter"
+reference = "feed"
+input = "dec"
+
+[nodes.keep]
+use = "file-sink"
+input = "dec"
+path = "decoded.flac"
+subtype = "PCM_16"
+"""
+
+
+def _program(seconds: float, seed: int) -> np.ndarray:
+    """Invented program material: a tone with a slowly changing level plus noise,
+    so the adaptive encoder has something to follow."""
+    rng = np.random.default_rng(seed)
+    n = int(seconds * RATE)
+    t = np.arange(n) / RATE
+    env = 0.15 + 0.1 * np.sin(2 * np.pi * 0.4 * t + seed)
+    x = env * np.sin(2 * np.pi * (180 + 40 * seed) * t) + 0.03 * rng.standard_normal(n)
+    return np.clip(x, -0.95, 0.95)
+
+
+def _write(path: Path, seconds: float, seed: int) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    sf.write(str(path), _program(seconds, seed), RATE, subtype="PCM_16")
+    return path
+
+
+def _env() -> dict[str, str]:
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(REPO)
+    return env
+
+
+def batch_cli(*args, timeout: float = 120) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "streamq.cli", "batch", *map(str, args)],
+                          env=_env(), capture_output=True, text=True, timeout=timeout,
+                          stdin=subprocess.DEVNULL)
+
+
+def batch_main(*args) -> int:
+    """The command run in this process (the pool's fork server is then started
+    once for the whole module, which keeps the tests quick)."""
+    return cli_main(["batch", *map(str, args)])
+
+
+def _summary(out: Path) -> dict:
+    return json.loads((out / "summary.json").read_text())
+
+
+def _by_input(out: Path) -> dict[str, dict]:
+    return {e["input"]: e for e in _summary(out)["files"]}
+
+
+def _report(folder: str | Path) -> dict:
+    return json.loads((Path(folder) / "report.json").read_text())
+
+
+@pytest.fixture(scope="module")
+def archive(tmp_path_factory) -> dict:
+    """Six short recordings in two folders (two share a file name) and one
+    corrupt file with a .wav name, plus the graph."""
+    root = tmp_path_factory.mktemp("archive")
+    files = [
+        _write(root / "studio-a" / "take.wav", 2.0, 1),
+        _write(root / "studio-a" / "interview.wav", 3.0, 2),
+        _write(root / "studio-a" / "phone-in.wav", 4.0, 3),
+        _write(root / "studio-b" / "take.wav", 2.5, 4),
+        _write(root / "studio-b" / "field-notes.wav", 3.5, 5),
+        _write(root / "studio-b" / "late-show.wav", 2.0, 6),
+    ]
+    bad = root / "studio-b" / "bad-take.wav"
+    bad.write_bytes(np.random.default_rng(9).bytes(6000))  # not audio at all
+    graph = root / "chain.toml"
+    graph.write_text(CHAIN)
+    return {"root": root, "files": files, "bad": bad, "graph": graph}
+
+
+@pytest.fixture(scope="module")
+def local_run(archive, tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("local") / "out"
+    rc = batch_main(archive["graph"], "--inputs", archive["root"], "--out", out, "--workers", "2")
+    assert rc == 1  # 1: finished, some files failed
+    return out
+
+
+def test_local_pool_results_equal_single_runs(archive, local_run, tmp_path):
+    entries = _by_input(local_run)
+    assert len(entries) == 7
+    folders = {e["folder"] for e in entries.values()}
+    assert len(folders) == 7  # equal file names in two folders get their own folders
+    for f in archive["files"]:
+        e = entries[str(f.resolve())]
+        assert e["status"] == "done", e
+        rep = _report(e["folder"])
+        assert rep["complete"] is True
+        assert (Path(e["folder"]) / "decoded.flac").is_file()
+    # The reference: the same graph run by hand on one file, in this process.
+    for f in (archive["files"][0], archive["files"][3]):  # both named take.wav
+        graph = load_graph(archive["graph"], [f'feed.path = "{f.as_posix()}"'])
+        single = tmp_path / f.parent.name
+        single.mkdir()
+        res = run_offline(build(graph, single), handle_signals=False)
+        assert res.complete
+        batch_rep = _report(entries[str(f.resolve())]["folder"])
+        assert batch_rep["meters"] == json.loads((single / "report.json").read_text())["meters"]
+        assert batch_rep["meters"]["noise"]["codebook_updates"] > 5  # the chain adapted
+
+
+def test_corrupt_file_is_recorded_and_does_not_stop_the_others(archive, local_run):
+    e = _by_input(local_run)[str(archive["bad"].resolve())]
+    assert e["status"] == "failed"
+    assert "bad-take.wav" in e["error"] and "not a readable audio file" in e["error"]
+    assert "\n" not in e["error"]
+    marker = json.loads((Path(e["folder"]) / "batch.json").read_text())
+    assert marker["status"] == "failed" and marker["error"] == e["error"]
+    s = _summary(local_run)
+    assert s["counts"] == {"done": 6, "failed": 1}
+
+
+def test_summary_table_totals_weighted_by_samples(archive, local_run):
+    s = _summary(local_run)
+    done = [e for e in s["files"] if e["status"] == "done"]
+    m = [e["meters"]["noise"] for e in done]
+    w = np.array([x["samples"] * x["channels"] for x in m], float)
+    sig = np.array([x["signal_power"] for x in m]) @ w
+    noi = np.array([x["noise_power"] for x in m]) @ w
+    t = s["totals"]["noise"]
+    # SNR of the archive played end to end: total signal energy over total noise energy.
+    assert t["snr_db"] == pytest.approx(10 * math.log10(sig / noi), abs=1e-9)
+    assert t["segsnr_db"] == pytest.approx(
+        float(np.array([x["segsnr_db"] for x in m]) @ w / w.sum()), abs=1e-9)
+    assert t["samples"] == sum(x["samples"] for x in m)
+    assert t["files"] == 6
+    lines = (local_run / "summary.csv").read_text().splitlines()
+    header = lines[0].split(",")
+    assert header[:3] == ["input", "folder", "status"] and "snr_db" in header
+    assert len(lines) == 1 + 7 + 1  # header, one row per file, the total
+    assert lines[-1].split(",")[header.index("status")] == "total"
+    png = local_run / "summary.png"
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.stat().st_size > 10_000
+
+
+def test_dask_cluster_gives_the_same_results(archive, local_run, tmp_path):
+    distributed = pytest.importorskip("distributed")
+    out = tmp_path / "out"
+    with distributed.LocalCluster(n_workers=2, processes=True, threads_per_worker=1,
+                                  host="127.0.0.1", dashboard_address=None) as cluster:
+        rc = batch_main(archive["graph"], "--inputs", archive["root"], "--out", out,
+                        "--cluster", cluster.scheduler_address, "--quiet")
+    assert rc == 1
+    assert "Dask" in _summary(out)["engine"]
+    local, remote = _by_input(local_run), _by_input(out)
+    assert set(local) == set(remote)
+    for inp, e in remote.items():
+        assert e["status"] == local[inp]["status"]
+        if e["status"] == "done":
+            assert _report(e["folder"])["meters"] == _report(local[inp]["folder"])["meters"]
+        else:
+            assert e["error"] == local[inp]["error"]
+    assert _summary(out)["totals"] == _summary(local_run)["totals"]
+
+
+def _done_markers(out: Path) -> list[Path]:
+    found = []
+    for m in (out / "files").glob("*/batch.json"):
+        try:
+            if json.loads(m.read_text()).get("status") == "done":
+                found.append(m)
+        except (OSError, ValueError):
+            pass  # being written
+    return found
+
+
+def test_interrupted_batch_resumes_with_only_the_missing_files(tmp_path):
+    root = tmp_path / "shows"
+    n_files = 16
+    for i in range(n_files):
+        _write(root / f"show-{i:02d}.wav", 4.0, 10 + i)
+    graph = tmp_path / "chain.toml"
+    graph.write_text(CHAIN)
+    out = tmp_path / "out"
+    proc = subprocess.Popen([sys.executable, "-m", "streamq.cli", "batch", str(graph),
+                             "--inputs", str(root), "--out", str(out), "--workers", "1"],
+                            env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, stdin=subprocess.DEVNULL)
+    deadline = time.monotonic() + 60
+    while len(_done_markers(out)) < 2 and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.01)
+    proc.send_signal(signal.SIGINT)
+    stdout, stderr = proc.communicate(timeout=60)
+    assert proc.returncode == 130, stderr
+    assert "interrupted" in stderr
+    first = _summary(out)
+    done_before = {e["input"]: e for e in first["files"] if e["status"] == "done"}
+    print(f"{len(done_before)} of {n_files} files done before the stop")
+    assert 2 <= len(done_before) < n_files
+    assert not any(e["status"] == "failed" for e in first["files"])
+    stamps = {i: (Path(e["folder"]) / "report.json").stat().st_mtime_ns
+              for i, e in done_before.items()}
+    # Files cut short keep a report marked incomplete and are not taken as done.
+    for e in first["files"]:
+        if e["status"] == "interrupted":
+            assert _report(e["folder"])["complete"] is False
+
+    assert batch_main(graph, "--inputs", root, "--out", out, "--workers", "2") == 0
+    second = _summary(out)
+    assert second["counts"] == {"done": n_files}
+    assert second["this_run"]["files_run"] == n_files - len(done_before)
+    for i, e in done_before.items():
+        assert (Path(e["folder"]) / "report.json").stat().st_mtime_ns == stamps[i]
+    reused = {e["input"] for e in second["files"] if e["reused"]}
+    assert reused == set(done_before)
+
+
+def test_changed_input_is_redone(tmp_path):
+    root = tmp_path / "calls"
+    a = _write(root / "call-a.wav", 2.0, 21)
+    b = _write(root / "call-b.wav", 2.0, 22)
+    c = _write(root / "call-c.wav", 2.0, 23)
+    graph = tmp_path / "chain.toml"
+    graph.write_text(CHAIN)
+    out = tmp_path / "out"
+    args = [graph, "--inputs", root, "--out", out, "--workers", "2", "--quiet"]
+    assert batch_main(*args) == 0
+    reports = {p: Path(e["folder"]) / "report.json" for p, e in _by_input(out).items()}
+    before = {p: r.stat().st_mtime_ns for p, r in reports.items()}
+
+    assert batch_main(*args) == 0
+    assert _summary(out)["this_run"]["files_run"] == 0  # nothing changed, nothing redone
+
+    _write(a, 2.5, 31)  # new content and size
+    st = b.stat()  # same content and size, newer modification time
+    os.utime(b, ns=(st.st_atime_ns, st.st_mtime_ns + 5_000_000_000))
+    assert batch_main(*args) == 0
+    s = _summary(out)
+    assert s["this_run"]["files_run"] == 2
+    redone = {e["input"] for e in s["files"] if not e["reused"]}
+    assert redone == {str(a.resolve()), str(b.resolve())}
+    assert reports[str(c.resolve())].stat().st_mtime_ns == before[str(c.resolve())]
+    assert _by_input(out)[str(a.resolve())]["samples"] == int(2.5 * RATE)
+
+    # A different setup (--set) is a different result: everything is redone.
+    assert batch_main(*args, "--set", "enc.bits=5") == 0
+    assert _summary(out)["this_run"]["files_run"] == 3
+
+
+# -- bad input: one clear line, exit 2 ----------------------------------------------
+
+def _bad(capsys, *argv) -> str:
+    assert cli_main(["batch", *map(str, argv)]) == 2
+    err = [line for line in capsys.readouterr().err.splitlines() if line.strip()]
+    assert len(err) == 1, err
+    return err[0]
+
+
+def test_bad_input_errors(tmp_path, capsys):
+    graph = tmp_path / "chain.toml"
+    graph.write_text(CHAIN)
+    _write(tmp_path / "in" / "one.wav", 1.0, 1)
+    out = tmp_path / "out"
+    line = _bad(capsys, tmp_path / "nope.toml", "--inputs", tmp_path / "in", "--out", out)
+    assert "nope.toml" in line and "no such graph file" in line
+    line = _bad(capsys, graph, "--inputs", str(tmp_path / "in" / "*.flac"), "--out", out)
+    assert "*.flac" in line and "matched no files" in line
+    line = _bad(capsys, graph, "--inputs", tmp_path / "missing", "--out", out)
+    assert "missing" in line and "no such file or folder" in line
+    for address in ("127.0.0.1:8786", "tcp://host", "local:0", "udp://127.0.0.1:8786"):
+        line = _bad(capsys, graph, "--inputs", tmp_path / "in", "--out", out, "--cluster", address)
+        assert address in line and ("tcp://HOST:PORT" in line or "local:N" in line)
+    line = _bad(capsys, graph, "--inputs", tmp_path / "in", "--out", out,
+                "--set", 'feed.path="x.wav"')
+    assert "feed" in line and "--inputs" in line
+
+
+def test_cluster_address_nobody_listens_on(tmp_path, capsys, monkeypatch):
+    pytest.importorskip("distributed")
+    import socket
+    from streamq.batch import engines
+    with socket.socket() as s:  # a free port, closed again: nothing listens there
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    graph = tmp_path / "chain.toml"
+    graph.write_text(CHAIN)
+    _write(tmp_path / "in" / "one.wav", 1.0, 1)
+    monkeypatch.setattr(engines, "CONNECT_TIMEOUT", 2.0)  # give up sooner than 10 s
+    line = _bad(capsys, graph, "--inputs", tmp_path / "in", "--out", tmp_path / "out",
+                "--cluster", f"tcp://127.0.0.1:{port}")
+    assert f"tcp://127.0.0.1:{port}" in line and "cannot reach a Dask scheduler" in line
+
+
+def test_batch_input_must_be_named_when_the_graph_has_two_file_sources(tmp_path, capsys):
+    _write(tmp_path / "in" / "one.wav", 1.0, 1)
+    _write(tmp_path / "ref.wav", 1.0, 2)
+    two = """\
+        [graph]
+        name = "two-sources"
+        {extra}
+        [nodes.feed]
+        use = "file-source"
+        path = "x.wav"
+        [nodes.ref]
+        use = "file-source"
+        path = "ref.wav"
+        [nodes.noise]
+        use = "error-meter"
+        reference = "ref"
+        input = "feed"
+        """
+    import textwrap
+    g = tmp_path / "two.toml"
+    g.write_text(textwrap.dedent(two.format(extra="")))
+    line = _bad(capsys, g, "--inputs", tmp_path / "in", "--out", tmp_path / "out")
+    assert "2 file-sources" in line and "feed" in line and "ref" in line and "batch_input" in line
+    g.write_text(textwrap.dedent(two.format(extra='batch_input = "noise"')))
+    line = _bad(capsys, g, "--inputs", tmp_path / "in", "--out", tmp_path / "out")
+    assert "batch_input" in line and "noise" in line and "file-source" in line
+    # Named: the other source keeps its own file (relative to the graph's folder).
+    g.write_text(textwrap.dedent(two.format(extra='batch_input = "feed"')))
+    assert cli_main(["batch", str(g), "--inputs", str(tmp_path / "in"), "--out",
+                     str(tmp_path / "out"), "--workers", "1", "--quiet"]) == 0
+    e = _summary(tmp_path / "out")["files"][0]
+    assert e["status"] == "done"
+    assert e["meters"]["noise"]["samples"] == RATE
+
+
+def test_missing_dask_names_the_extra(tmp_path):
+    graph = tmp_path / "chain.toml"
+    graph.write_text(CHAIN)
+    _write(tmp_path / "in" / "one.wav", 1.0, 1)
+    # Run the command in a Python where importing distributed fails, as it does
+    # when the extra is not installed.
+    code = ("import sys; sys.modules['distributed'] = None; from streamq.cli import main; "
+            f"sys.exit(main(['batch', {str(graph)!r}, '--inputs', {str(tmp_path / 'in')!r}, "
+            f"'--out', {str(tmp_path / 'out')!r}, '--cluster', 'local:1']))")
+    r = subprocess.run([sys.executable, "-c", code], env=_env(), capture_output=True, text=True,
+                       timeout=60)
+    assert r.returncode == 2
+    lines = [line for line in r.stderr.splitlines() if line.strip()]
+    assert len(lines) == 1 and "streamq[cluster]" in lines[0]
+
+
+def test_inputs_from_list_file_and_glob(tmp_path):
+    a = _write(tmp_path / "x" / "a.wav", 0.5, 1)
+    b = _write(tmp_path / "x" / "deep" / "b.flac", 0.5, 2)
+    (tmp_path / "x" / "notes.txt").write_text("not audio")
+    lst = tmp_path / "list.txt"
+    lst.write_text("# tonight's calls\nx/deep/b.flac\n\nx/a.wav\nx/a.wav\n")
+    assert expand_inputs([str(lst)]) == [b.resolve(), a.resolve()]
+    assert expand_inputs([str(tmp_path / "x" / "**" / "*.flac")]) == [b.resolve()]
+    assert expand_inputs([str(tmp_path / "x")]) == [a.resolve(), b.resolve()]
+    # Files under the output folder are never inputs.
+    assert expand_inputs([str(tmp_path / "x")], exclude=tmp_path / "x" / "deep") == [a.resolve()]
+    assert folder_name(a.resolve()) != folder_name((tmp_path / "y" / "a.wav").resolve())

@@ -70,6 +70,10 @@ def check_graph(graph: Graph, node: str, overrides: list[str]) -> None:
                                f"in each file's own folder)")
 
 
+def _speed(x: float) -> str:
+    return f"{x:,.1f}x" if x < 10 else f"{x:,.0f}x"
+
+
 class BatchProgress:
     """Files done / total, audio hours processed and speed as a multiple of real
     time (tqdm on stderr; nothing when quiet or stderr is not a terminal)."""
@@ -83,7 +87,7 @@ class BatchProgress:
         from tqdm import tqdm
         self.bar = tqdm(total=total, initial=initial, desc=label, unit="file", leave=False,
                         dynamic_ncols=True,
-                        bar_format="{desc}: {n_fmt}/{total_fmt} files |{bar}| {postfix} "
+                        bar_format="{desc}: {n_fmt}/{total_fmt} files{postfix} |{bar}| "
                                    "[{elapsed}, {remaining} left]")
         self.bar.set_postfix_str("0.00 h audio", refresh=True)
 
@@ -93,7 +97,7 @@ class BatchProgress:
             return
         elapsed = max(time.perf_counter() - self.t0, 1e-9)
         self.bar.set_postfix_str(f"{self.audio / 3600:.2f} h audio, "
-                                 f"{self.audio / elapsed:,.0f}x real time", refresh=False)
+                                 f"{_speed(self.audio / elapsed)} real time", refresh=False)
         self.bar.update(1)
 
     def note(self, text: str) -> None:
@@ -329,7 +333,7 @@ def _print_summary(head: dict[str, Any], paths: list[Path], stopped: bool) -> No
           f"({head['reused']} from an earlier run), {failed} failed"
           + (f", {unfinished} not finished" if stopped else "")
           + f"; {run['audio_seconds'] / 3600:.2f} h of audio run in {run['wall_seconds']:.1f} s "
-            f"({speed:,.0f}x real time) on {head['engine']}")
+            f"({_speed(speed)} real time) on {head['engine']}")
     tot = json.loads(paths[1].read_text(encoding="utf-8"))["totals"]
     for mid, t in tot.items():
         def f(key, fmt="{:.2f}"):

@@ -43,6 +43,9 @@ class GraphHeader(BaseModel):
     sample_rate: int | None = Field(None, ge=1, le=1_536_000,
                                     description="Hz; taken from the file sources when left out")
     block: int = Field(256, ge=1, le=1 << 20, description="frames per block in live runs")
+    batch_input: str | None = Field(
+        None, description="id of the file-source that `streamq batch` binds to each input file "
+                          "(default: the graph's only file-source)")
 
 
 @dataclass
@@ -199,6 +202,8 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
             if fld not in node.optional_inputs and getattr(node.config, fld, None) is None:
                 if nid in configs:  # pydantic already reported it when required
                     problems.append(f"{label}: node '{nid}', field '{fld}': missing (required)")
+    if header.batch_input is not None and header.batch_input not in all_ids:
+        problems.append(f"{label}: [graph], field 'batch_input': no node named '{header.batch_input}'")
     order, cycle = _topological_order(nodes)
     if cycle:
         first, before = cycle[0], cycle[-1]

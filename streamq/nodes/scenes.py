@@ -67,12 +67,12 @@ def drift_scene(seed: int, channel: int, start: int, stop: int, rate: int, total
     around -62 dBFS RMS; the middle third is syllable-like bursts of shaped
     noise (peaky, near-Laplacian amplitudes) around -24 dBFS RMS; the last
     third is a dense chord of harmonic tones plus noise around -12 dBFS RMS.
-    Parts cross-fade over 0.25 s.
+    Parts cross-fade over 1.5 s, as a presenter or a band would come in.
     """
     n = np.arange(start, stop)
     t = n / rate
     third = total / 3.0
-    fade = 0.25 * rate
+    fade = 1.5 * rate
 
     def weight(center_lo: float, center_hi: float) -> np.ndarray:
         up = np.clip((n - center_lo) / fade + 0.5, 0.0, 1.0) if center_lo > 0 else np.ones(len(n))
@@ -85,23 +85,26 @@ def drift_scene(seed: int, channel: int, start: int, stop: int, rate: int, total
     room += tone(t, 50.0, -66.0) + tone(t, 150.0, -74.0)
 
     # Part 2: speech-like bursts: band-passed noise under a 4-5 Hz syllable
-    # envelope with pauses, giving a peaky amplitude distribution.
+    # envelope, in phrases separated by short breaths (about 0.3 s every 2.6 s,
+    # with 20 ms ramps), giving a peaky amplitude distribution.
     bp = sps.firwin(63, [0.012, 0.16], pass_zero=False)
     voiced = _filtered_noise(seed, channel, start, stop, bp, 2) / np.sqrt(np.sum(bp ** 2))
-    syll = np.maximum(0.0, np.sin(2 * np.pi * 4.3 * t + 0.7 * np.sin(2 * np.pi * 0.37 * t))) ** 2
-    phrase = (np.sin(2 * np.pi * 0.31 * t + channel) > -0.35).astype(float)
+    syll = 0.15 + 0.85 * np.maximum(0.0, np.sin(2 * np.pi * 4.3 * t + 0.7 * np.sin(2 * np.pi * 0.37 * t))) ** 2
+    cycle = np.mod(t + 0.4 * channel, 2.6)
+    phrase = np.clip(np.minimum(cycle - 0.3, 2.6 - cycle) / 0.02, 0.0, 1.0)
     pitch = 0.5 * tone(t, 140.0 + 20.0 * np.sin(2 * np.pi * 0.5 * t), 0.0)
-    speech = 0.16 * syll * phrase * (voiced + pitch)
+    speech = 0.07 * syll * phrase * (voiced + pitch)
 
     # Part 3: band: a major chord with harmonics, slow tremolo, and a noise bed.
     band = np.zeros(len(n))
     for f0 in (110.0, 138.6, 164.8, 220.0):
         for h, a in ((1, 1.0), (2, 0.5), (3, 0.33), (5, 0.2)):
             band += a * np.sin(2 * np.pi * f0 * h * t + f0 * 0.01 * h)
-    band *= 0.045 * (1.0 + 0.3 * np.sin(2 * np.pi * 1.7 * t))
-    band += 0.05 * _noise(seed, channel, start, stop, "laplacian", 3)
+    band *= 0.085 * (1.0 + 0.3 * np.sin(2 * np.pi * 1.7 * t))
+    band += 0.09 * _noise(seed, channel, start, stop, "laplacian", 3)
 
-    out = room * weight(0, third) + speech * weight(third, 2 * third) + band * weight(2 * third, total)
+    # the room tone stays under everything: no part of the program is digital silence
+    out = room + speech * weight(third, 2 * third) + band * weight(2 * third, total)
     return np.clip(out, -1.0, 1.0 - 2.0 ** -15)
 
 

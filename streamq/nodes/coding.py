@@ -1,0 +1,172 @@
+"""Codebook making shared by the encoder and decoder nodes: one place that
+turns a method + a PDF description into a codebook, and the backward
+adapter that both ends run identically.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from typing import Any
+
+import numpy as np
+
+from streamq.engine.sideinfo import level_bits, round_levels
+from streamq.errors import StreamqError
+
+PARAMETRIC = ("gaussian", "laplacian", "gamma", "uniform", "generalized-gaussian")
+G711 = {"g711-mu": "mu", "g711-a": "a"}
+
+
+def _design():
+    import streamq.design as d
+    return d
+
+
+def _opts(method: str, opts: dict[str, Any]) -> dict[str, Any]:
+    """The design options that apply to ``method``."""
+    keep = {"ecsq": ("entropy",), "uniform": ("loading",), "mu-law": ("mu",), "a-law": ("a",)}
+    return {k: opts[k] for k in keep.get(method, ()) if opts.get(k) is not None}
+
+
+@lru_cache(maxsize=256)
+def unit_design(method: str, n_levels: int, model: str, shape: float | None, extra: tuple):
+    """A design for the zero-mean, unit-variance model (cached: location-scale
+    families scale exactly, so adaptive model designs cost a multiply)."""
+    d = _design()
+    pdf = d.pdf_model(model, 0.0, 1.0, shape)
+    cb, rep = d.design(method, n_levels, pdf=pdf, **dict(extra))
+    return np.asarray(cb.thresholds), np.asarray(cb.levels), float(rep.mse)
+
+
+def model_codebook(method: str, n_levels: int, model: str, mean: float, std: float,
+                   shape: float | None, opts: dict[str, Any]):
+    """Codebook for a parametric PDF with the given mean and standard deviation."""
+    d = _design()
+    std = max(float(std), 2.0 ** -24)
+    if shape is not None:
+        shape = round(float(shape), 2)
+    extra = tuple(sorted(_opts(method, opts).items()))
+    th, lv, _ = unit_design(method, n_levels, model, shape, extra)
+    return d.Codebook(levels=lv * std + mean, thresholds=th * std + mean)
+
+
+def histogram_codebook(method: str, n_levels: int, centers: np.ndarray, counts: np.ndarray,
+                       init, opts: dict[str, Any]):
+    d = _design()
+    cb, _ = d.design(method, n_levels, centers=centers, weights=counts, init=init,
+                     **_opts(method, opts))
+    return cb
+
+
+def fixed_codebook(method: str, n_levels: int, opts: dict[str, Any], samples: np.ndarray | None):
+    """The codebook of a fixed (non-adaptive) encoder."""
+    d = _design()
+    if method in G711:
+        return d.g711_codebook(G711[method])
+    if samples is not None:
+        cb, _ = d.design(method, n_levels, samples=samples, **_opts(method, opts))
+        return cb
+    return model_codebook(method, n_levels, opts["model"], 0.0, opts["scale"], opts.get("shape"), opts)
+
+
+def finish_levels(cb, grid_bits: int | None, standard: bool):
+    """Put levels on the side-information grid; return (codebook, side bits).
+
+    Standard tables (G.711) are known at both ends and cost nothing.
+    """
+    d = _design()
+    if standard or grid_bits is None:
+        return cb, 0
+    levels = round_levels(cb.levels, grid_bits)
+    return d.Codebook(levels=levels, thresholds=cb.thresholds), level_bits(levels, grid_bits)
+
+
+class BackwardAdapter:
+    """Backward adaptation: every ``hop`` samples, fit the model's scale and
+    mean to the last ``window`` *decoded* samples and redesign. The encoder
+    runs it on its shadow decoder's output, the decoder on its own output, so
+    both reach the same codebooks with no side information.
+
+    The decoded signal of a Lloyd-Max quantizer has the input's mean and
+    variance ``sigma**2 - D`` (``D`` = its MSE), so the scale estimate is
+    ``sqrt(var(decoded) / (1 - D_unit))``.
+    """
+
+    def __init__(self, coding: dict[str, Any], channels: int):
+        self.method = coding["method"]
+        self.L = int(coding["levels"])
+        self.W = int(coding["window"])
+        self.H = int(coding["hop"])
+        self.model = coding["model"]
+        self.shape = coding.get("shape")
+        self.opts = dict(coding.get("options", {}))
+        self.floor = 2.0 ** -20
+        _, _, self.d_unit = unit_design(self.method, self.L, self.model,
+                                        None if self.shape is None else round(float(self.shape), 2),
+                                        tuple(sorted(_opts(self.method, self.opts).items())))
+        self.d_unit = min(max(self.d_unit, 0.0), 0.99)
+        self.hist = np.zeros((self.W, channels))
+        self.seen = 0
+        init = model_codebook(self.method, self.L, self.model, 0.0, float(coding["scale"]),
+                              self.shape, self.opts)
+        self.current = [init] * channels
+
+    def _push(self, ch: int, dec: np.ndarray) -> None:
+        n = dec.shape[0]
+        h = self.hist[:, ch]
+        if n == 0:
+            return
+        if n >= self.W:
+            h[:] = dec[-self.W:]
+        else:
+            h[:-n] = h[n:]
+            h[-n:] = dec
+
+    def _redesign(self, ch: int, t: int):
+        have = min(self.W, t)
+        win = self.hist[self.W - have:, ch]
+        mean = float(win.mean())
+        var = float(np.mean((win - mean) ** 2))
+        std = max(np.sqrt(var / (1.0 - self.d_unit)), self.floor)
+        return model_codebook(self.method, self.L, self.model, mean, std, self.shape, self.opts)
+
+    def run(self, ch: int, start: int, n: int, segment) -> list[tuple[int, Any]]:
+        """Process samples [start, start+n) of channel ``ch``.
+
+        ``segment(a, b, codebook)`` handles the relative range [a, b) with
+        ``codebook`` and returns the decoded samples. Returns the codebooks
+        designed at hop boundaries t (start < t <= start+n) as (t, codebook).
+        """
+        out = []
+        pos = 0
+        first = (start // self.H + 1) * self.H
+        for t in range(first, start + n + 1, self.H):
+            dec = segment(pos, t - start, self.current[ch])
+            self._push(ch, dec)
+            pos = t - start
+            self.current[ch] = self._redesign(ch, t)
+            out.append((t, self.current[ch]))
+        if pos < n:
+            self._push(ch, segment(pos, n, self.current[ch]))
+        return out
+
+    def get_state(self):
+        return {"hist": self.hist.copy(), "current": list(self.current)}
+
+    def set_state(self, state):
+        self.hist = state["hist"].copy()
+        self.current = list(state["current"])
+
+
+def check_method(method: str, adapt: str) -> str | None:
+    """Why a method cannot run in an adaptation mode (None when it can)."""
+    if method in G711 and adapt != "fixed":
+        return f"{method} is a fixed standard quantizer; use adapt = \"fixed\""
+    if adapt == "backward" and method not in ("lloyd-max", "uniform"):
+        return "backward adaptation supports method \"lloyd-max\" or \"uniform\""
+    return None
+
+
+def require(cond: bool, message: str) -> None:
+    if not cond:
+        raise StreamqError(message)

@@ -1,0 +1,399 @@
+"""The ``error-meter`` node: how far a decoded signal is from its reference.
+
+Everything is accumulated on fixed frames counted in samples from the first
+measured sample (segmental-SNR frames, series windows, spectrum frames), and
+frame results are added in frame order, so the figures are bit-identical
+whatever the block size (DESIGN.md rule 1). The reference is delayed by the
+difference of the two streams' declared latencies before comparing.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from typing import Literal
+
+import numpy as np
+from pydantic import Field
+
+from streamq.engine.blocks import CodebookUpdate, Packet, StreamSpec
+from streamq.engine.node import Duration, Node, NodeConfig
+from streamq.engine.registry import register
+
+
+class MeterConfig(NodeConfig):
+    use: Literal["error-meter"]
+    reference: str = Field(description="the original signal")
+    input: str = Field(description="the signal to measure against it (e.g. a decoder)")
+    frame: Duration = Field(Duration(20, "ms"), description="segmental SNR frame length")
+    clamp: tuple[float, float] = Field((-10.0, 35.0), description="per-frame SNR clamp, dB "
+                                                                  "(segmental SNR)")
+    series: Duration = Field(Duration(100, "ms"), description="time-series row length "
+                                                              "(rounded to whole frames)")
+    spectrum_size: int = Field(2048, ge=64, le=65_536, description="Welch segment length, samples")
+
+
+def _seq_sum(acc: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """acc + rows[0] + rows[1] + ..., added strictly in order (block-size proof)."""
+    if rows.shape[0] == 0:
+        return acc
+    return np.cumsum(np.concatenate([acc[None], rows]), axis=0)[-1]
+
+
+def _db(num: float, den: float) -> float | None:
+    if den <= 0:
+        return math.inf if num > 0 else None
+    if num <= 0:
+        return -math.inf
+    return 10.0 * math.log10(num / den)
+
+
+@register
+class ErrorMeter(Node):
+    """Measures SNR, segmental SNR, noise split, bit rates and spectra of a decoded signal."""
+
+    kind = "error-meter"
+    Config = MeterConfig
+    inputs = ("reference", "input")
+    role = "meter"
+
+    def open(self, specs, ctx) -> StreamSpec | None:
+        ref, inp = specs["reference"], specs["input"]
+        for fld, sp in (("reference", ref), ("input", inp)):
+            if sp.kind != "signal":
+                raise self.fail(fld, f"node '{getattr(self.config, fld)}' gives indices; meter a "
+                                     f"decoder's output")
+        if ref.channels != inp.channels:
+            raise self.fail("input", f"{inp.channels} channel(s) against a reference of "
+                                     f"{ref.channels}")
+        self.d = inp.latency - ref.latency
+        if self.d < 0:
+            raise self.fail("reference", "the reference is later than the input; swap them")
+        self.C = inp.channels
+        self.rate = inp.rate
+        lo, hi = self.config.clamp
+        if not lo < hi:
+            raise self.fail("clamp", "give [low, high] with low < high")
+        self.F = max(1, self.config.frame.samples(self.rate))
+        self.S = max(1, round(self.config.series.samples(self.rate) / self.F))
+        self.N = self.config.spectrum_size
+        self.total_frames = inp.frames
+        self.L = int(inp.extra.get("n_levels", 0)) or None
+        self.out_dir = ctx.out_dir
+        C = self.C
+        self.refbuf = np.zeros((self.d, C))
+        self.t = 0          # output frames seen
+        self.m = 0          # measured samples (after the latency pre-roll)
+        z = np.zeros(C)
+        self.sig, self.noi, self.ovn, self.ovc = z.copy(), z.copy(), z.copy(), z.copy()
+        self.seg_sum, self.seg_n = z.copy(), z.copy()
+        self.peak = 0.0
+        self.pend = np.zeros((0, 3 * C + 1))
+        self.frames_done = 0
+        # series
+        self.rows: list[dict] = []
+        self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
+        self.win_events: dict[int, list[int]] = {}
+        # spectra
+        self.spec_pend = np.zeros((0, 2 * C))
+        self.spec_win = np.hanning(self.N + 2)[1:-1]
+        self.spec_acc = np.zeros((2, self.N // 2 + 1))
+        self.spec_frames = 0
+        # codebooks in force (output time) and what they cost
+        self.bounds = np.tile(np.array([-np.inf, np.inf]), (C, 1))
+        self.version = [None] * C
+        self.side_bits = 0
+        self.updates = 0
+        self.levels_seen: int | None = self.L
+        self.ent_counts: list[np.ndarray | None] = [None] * C
+        self.ent_acc = z.copy()
+        self.ent_n = z.copy()
+        # codebook pictures for the report: first, middle, last (channel 0)
+        self.picks: dict[str, dict] = {}
+        self.cur_pick: dict | None = None
+        return None
+
+    # -- codebooks -------------------------------------------------------------
+    def _flush_entropy(self, ch: int) -> None:
+        c = self.ent_counts[ch]
+        if c is None:
+            return
+        n = c.sum()
+        if n > 0:
+            p = c[c > 0] / n
+            self.ent_acc[ch] += float(n) * float(-(p * np.log2(p)).sum())
+            self.ent_n[ch] += float(n)
+        self.ent_counts[ch] = None
+
+    def _pick_start(self, u: CodebookUpdate) -> None:
+        if u.channel != 0:
+            return
+        self._pick_end(u.at_sample)
+        lv = np.asarray(u.levels)
+        span = max(lv[-1] - lv[0], 1e-9)
+        self.cur_pick = {"version": u.version, "at_sample": u.at_sample, "method": u.method,
+                         "thresholds": np.asarray(u.thresholds).tolist(), "levels": lv.tolist(),
+                         "range": [float(lv[0] - 0.25 * span), float(lv[-1] + 0.25 * span)],
+                         "counts": np.zeros(200, dtype=np.int64), "until": None}
+
+    def _pick_end(self, at: int) -> None:
+        p = self.cur_pick
+        if p is None:
+            return
+        p["until"] = at
+        if "first" not in self.picks:
+            self.picks["first"] = p
+        self.picks["last"] = p
+        mid = (self.total_frames or 0) // 2
+        if self.total_frames and p["at_sample"] <= mid < at:
+            self.picks["middle"] = p
+        self.cur_pick = None
+
+    def _apply(self, u: CodebookUpdate) -> None:
+        ch = u.channel
+        self._flush_entropy(ch)
+        self.bounds[ch] = (u.levels[0], u.levels[-1])
+        self.version[ch] = u.version
+        self.side_bits += int(u.side_info_bits)
+        self.updates += 1
+        if self.levels_seen is None:
+            self.levels_seen = u.n_levels
+        self._pick_start(u)
+        w = (u.at_sample - self.d) // (self.F * self.S) if u.at_sample >= self.d else 0
+        ev = self.win_events.setdefault(w, [0, 0])
+        ev[0] += 1
+        ev[1] += int(u.side_info_bits)
+
+    # -- one step --------------------------------------------------------------
+    def step(self, frames, inputs) -> None:
+        ref = inputs["reference"].block.data
+        pkt = inputs["input"]
+        x = pkt.block.data
+        s = pkt.block.start
+        if self.d:
+            both = np.concatenate([self.refbuf, ref])
+            ref, self.refbuf = both[:frames], both[frames:]
+        updates = sorted((u for u in pkt.events if isinstance(u, CodebookUpdate)),
+                         key=lambda u: u.at_sample)
+        idx = pkt.indices.data if pkt.indices is not None else None
+        skip = min(frames, max(0, self.d - s))   # latency pre-roll: nothing to compare yet
+        # per-sample codebook bounds, index counts and codebook pictures, segment by segment
+        lo = np.empty((frames, self.C))
+        hi = np.empty((frames, self.C))
+        ver = np.empty((frames, 1))  # channel 0's codebook version, for the time series
+        cuts = sorted({u.at_sample - s for u in updates} | {0, frames})
+        ui = 0
+        for a, b in zip(cuts[:-1], cuts[1:]):
+            while ui < len(updates) and updates[ui].at_sample - s <= a:
+                self._apply(updates[ui])
+                ui += 1
+            lo[a:b] = self.bounds[:, 0]
+            hi[a:b] = self.bounds[:, 1]
+            ver[a:b] = -1 if self.version[0] is None else self.version[0]
+            a2 = max(a, skip)
+            if a2 >= b:
+                continue
+            if idx is not None:
+                for ch in range(self.C):
+                    if self.version[ch] is None:
+                        continue
+                    n_lv = self.levels_seen or int(idx[a2:b, ch].max()) + 1
+                    cnt = np.bincount(idx[a2:b, ch], minlength=n_lv)
+                    if self.ent_counts[ch] is None:
+                        self.ent_counts[ch] = cnt.astype(np.int64)
+                    else:
+                        self.ent_counts[ch][:len(cnt)] += cnt
+            if self.cur_pick is not None:
+                p = self.cur_pick
+                plo, phi = p["range"]
+                k = ((ref[a2:b, 0] - plo) * (200 / (phi - plo))).astype(np.int64)
+                k = k[(k >= 0) & (k < 200)]
+                p["counts"] += np.bincount(k, minlength=200)
+        while ui < len(updates):
+            self._apply(updates[ui])
+            ui += 1
+        self.t = s + frames
+        if skip == frames:
+            return None
+        r = ref[skip:]
+        err = x[skip:] - r
+        ov = ((r < lo[skip:]) | (r > hi[skip:])).astype(np.float64)
+        self.peak = max(self.peak, float(np.max(np.abs(err))) if err.size else 0.0)
+        self._frames(np.concatenate([r, err, ov, ver[skip:]], axis=1))
+        self._spectrum(np.concatenate([r, err], axis=1))
+        self.m += r.shape[0]
+        return None
+
+    def _frames(self, new: np.ndarray) -> None:
+        C, F = self.C, self.F
+        buf = np.concatenate([self.pend, new]) if self.pend.shape[0] else new
+        K = buf.shape[0] // F
+        self.pend = buf[K * F:].copy()
+        if K == 0:
+            return
+        frame_ver = buf[F - 1:K * F:F, 3 * C]   # version in force at each frame's last sample
+        blk = np.ascontiguousarray(buf[:K * F, :3 * C].reshape(K, F, 3 * C).transpose(2, 0, 1))
+        r, e, ov = blk[:C], blk[C:2 * C], blk[2 * C:]
+        sig = (r * r).sum(axis=-1).T          # (K, C), each frame summed the same way
+        noi = (e * e).sum(axis=-1).T
+        ovn = (e * e * ov).sum(axis=-1).T
+        ovc = ov.sum(axis=-1).T
+        self.sig = _seq_sum(self.sig, sig)
+        self.noi = _seq_sum(self.noi, noi)
+        self.ovn = _seq_sum(self.ovn, ovn)
+        self.ovc = _seq_sum(self.ovc, ovc)
+        lo, hi = self.config.clamp
+        with np.errstate(divide="ignore", invalid="ignore"):
+            snr = 10.0 * np.log10(sig / noi)
+        snr = np.where(noi == 0, hi, snr)
+        valid = ~((sig == 0) & (noi == 0))
+        snr = np.where(valid, np.clip(snr, lo, hi), 0.0)
+        self.seg_sum = _seq_sum(self.seg_sum, snr)
+        self.seg_n = self.seg_n + valid.sum(axis=0)
+        # series rows, channels pooled
+        for k in range(K):
+            w = self.win
+            w["sig"] += float(sig[k].sum())
+            w["noi"] += float(noi[k].sum())
+            w["ovc"] += float(ovc[k].sum())
+            w["seg"] += float(snr[k][valid[k]].sum())
+            w["segn"] += int(valid[k].sum())
+            w["frames"] += 1
+            w["version"] = int(frame_ver[k])
+            if w["frames"] == self.S:
+                self._row(F * self.S)
+        self.frames_done += K
+
+    def _row(self, n: int) -> None:
+        w = self.win
+        idx = len(self.rows)
+        ev = self.win_events.pop(idx, [0, 0])
+        start = idx * self.F * self.S
+        nn = n * self.C
+        self.rows.append({
+            "time_s": start / self.rate,
+            "samples": n,
+            "snr_db": _db(w["sig"], w["noi"]),
+            "segsnr_db": w["seg"] / w["segn"] if w["segn"] else None,
+            "signal_dbfs": _db(w["sig"] / nn, 1.0) if nn else None,
+            "noise_dbfs": _db(w["noi"] / nn, 1.0) if nn else None,
+            "overload_fraction": w["ovc"] / nn if nn else 0.0,
+            "codebook_updates": ev[0],
+            "side_info_bits": ev[1],
+            "codebook_version": None if w.get("version", -1) < 0 else w["version"],
+        })
+        self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
+
+    def _spectrum(self, new: np.ndarray) -> None:
+        N, hop = self.N, self.N // 2
+        buf = np.concatenate([self.spec_pend, new]) if self.spec_pend.shape[0] else new
+        if buf.shape[0] < N:
+            self.spec_pend = buf.copy()
+            return
+        K = (buf.shape[0] - N) // hop + 1
+        view = np.lib.stride_tricks.sliding_window_view(buf, N, axis=0)[::hop][:K]  # (K, 2C, N)
+        spec = np.abs(np.fft.rfft(view * self.spec_win, axis=-1)) ** 2
+        C = self.C
+        both = np.stack([spec[:, :C].sum(axis=1), spec[:, C:].sum(axis=1)], axis=1)  # (K, 2, f)
+        self.spec_acc = _seq_sum(self.spec_acc, both)
+        self.spec_frames += K
+        self.spec_pend = buf[K * hop:].copy()
+
+    # -- the end -----------------------------------------------------------------
+    def finish(self) -> None:
+        # the last partial frame counts towards the totals, not towards segmental SNR
+        if self.pend.shape[0]:
+            C = self.C
+            r, e, ov = self.pend[:, :C], self.pend[:, C:2 * C], self.pend[:, 2 * C:3 * C]
+            self.win["version"] = int(self.pend[-1, 3 * C])
+            self.sig = self.sig + (r * r).sum(axis=0)
+            self.noi = self.noi + (e * e).sum(axis=0)
+            self.ovn = self.ovn + (e * e * ov).sum(axis=0)
+            self.ovc = self.ovc + ov.sum(axis=0)
+            w = self.win
+            w["sig"] += float((r * r).sum())
+            w["noi"] += float((e * e).sum())
+            w["ovc"] += float(ov.sum())
+            self.pend = self.pend[:0]
+            self._row(r.shape[0] + w["frames"] * self.F)
+        elif self.win["frames"]:
+            self._row(self.win["frames"] * self.F)
+
+    def close(self, complete: bool) -> None:
+        if not complete and (self.pend.shape[0] or self.win["frames"]):
+            self.finish()
+        for ch in range(self.C):
+            self._flush_entropy(ch)
+        self._pick_end(self.t)
+        self._write_files()
+
+    def _write_files(self) -> None:
+        base = self.out_dir / self.id
+        try:
+            with open(f"{base}-series.csv", "w", newline="") as f:
+                cols = ["time_s", "samples", "snr_db", "segsnr_db", "signal_dbfs", "noise_dbfs",
+                        "overload_fraction", "codebook_updates", "side_info_bits", "codebook_version"]
+                w = csv.DictWriter(f, fieldnames=cols)
+                w.writeheader()
+                for row in self.rows:
+                    w.writerow({k: ("" if v is None else (f"{v:.6g}" if isinstance(v, float) else v))
+                                for k, v in row.items()})
+            if self.spec_frames:
+                freqs = np.fft.rfftfreq(self.N, 1.0 / self.rate)
+                scale = 1.0 / (self.rate * (self.spec_win ** 2).sum() * self.spec_frames * self.C)
+                psd = self.spec_acc * scale
+                psd[:, 1:-1] *= 2.0
+                with open(f"{base}-spectrum.csv", "w", newline="") as f:
+                    w = csv.writer(f)
+                    w.writerow(["frequency_hz", "signal_psd_db", "noise_psd_db"])
+                    for fr, sp, npow in zip(freqs, psd[0], psd[1]):
+                        w.writerow([f"{fr:.3f}", f"{10 * np.log10(max(sp, 1e-30)):.3f}",
+                                    f"{10 * np.log10(max(npow, 1e-30)):.3f}"])
+        except OSError:
+            pass  # the report still carries the totals
+
+    def report(self):
+        C = self.C
+        sig, noi = float(self.sig.sum()), float(self.noi.sum())
+        frames_out = self.t
+        rates = {}
+        L = self.levels_seen
+        if L:
+            fixed = math.ceil(math.log2(L))
+            side_ps = self.side_bits / (frames_out * C) if frames_out else 0.0
+            ent = float(self.ent_acc.sum() / self.ent_n.sum()) if self.ent_n.sum() else None
+            rates = {"levels": L, "fixed_rate_bits": fixed, "entropy_bits": ent,
+                     "side_info_bits": self.side_bits, "side_info_bits_per_sample": side_ps,
+                     "bits_per_sample": fixed + side_ps,
+                     "entropy_bits_per_sample_with_side_info": None if ent is None else ent + side_ps}
+        per_ch = []
+        for ch in range(C):
+            per_ch.append({"snr_db": _db(float(self.sig[ch]), float(self.noi[ch])),
+                           "segsnr_db": float(self.seg_sum[ch] / self.seg_n[ch]) if self.seg_n[ch] else None})
+        seg_n = float(self.seg_n.sum())
+        picks = {}
+        for key in ("first", "middle", "last"):
+            p = self.picks.get(key)
+            if p is not None:
+                picks[key] = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in p.items()}
+        out = {
+            "snr_db": _db(sig, noi),
+            "segsnr_db": float(self.seg_sum.sum() / seg_n) if seg_n else None,
+            "samples": self.m,
+            "frames": frames_out,
+            "channels": C,
+            "latency_frames": self.d,
+            "signal_power": sig / (self.m * C) if self.m else None,
+            "noise_power": noi / (self.m * C) if self.m else None,
+            "granular_noise_power": (noi - float(self.ovn.sum())) / (self.m * C) if self.m else None,
+            "overload_noise_power": float(self.ovn.sum()) / (self.m * C) if self.m else None,
+            "overload_samples": int(self.ovc.sum()),
+            "peak_abs_error": self.peak,
+            "codebook_updates": self.updates,
+            "per_channel": per_ch,
+            "series_csv": f"{self.id}-series.csv",
+            "spectrum_csv": f"{self.id}-spectrum.csv" if self.spec_frames else None,
+            "codebooks": picks,
+            **rates,
+        }
+        return out

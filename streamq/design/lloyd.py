@@ -68,8 +68,8 @@ class HistogramPrefix:
     """Prefix sums of a histogram, ready for repeated Lloyd designs.
 
     Build with :func:`histogram_prefix`. The centers are stored shifted by
-    ``ref`` (the midpoint of their range) and the weights normalised to sum
-    to one, which keeps the moment sums well conditioned.
+    ``ref`` (the weighted mean) and the weights normalised to sum to one,
+    which keeps the moment sums well conditioned.
 
     Attributes
     ----------
@@ -186,7 +186,11 @@ def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPre
             c, w = histogram_arrays(c, w)
             total = float(w.sum())
     n = c.size
-    ref = 0.5 * (float(c[0]) + float(c[-1]))
+    # work about the weighted mean: the second-moment sums then hold the
+    # variance, the smallest possible, which keeps cancellation low
+    ref = float(w.dot(c)) / total
+    if not math.isfinite(ref):
+        ref = 0.5 * (float(c[0]) + float(c[-1]))
     cs = c - ref
     wn = w * (1.0 / total)
     p0 = np.empty(n + 1)
@@ -276,8 +280,10 @@ def _split_worst(S, y, bounds, pre):
 
     ``S`` holds the cell moments (rows: cells), ``y`` the levels (centroids
     for occupied cells; changed in place and re-sorted) and ``bounds`` the
-    bin index bounds of each cell. Returns the new total distortion and
-    whether some empty cells could not be used (all occupied cells pure).
+    bin index bounds of each cell. Each empty level takes the upper half of
+    the worst cell, split at its centroid. Returns the total distortion of
+    the resulting partition and whether some empty cells could not be used
+    (all occupied cells are pure).
     """
     s0 = S[:, 0]
     occ = s0 > 0.0
@@ -287,15 +293,20 @@ def _split_worst(S, y, bounds, pre):
     stuck = False
     p0, p1, p2 = pre.p0, pre.p1, pre.p2
     shifted = pre.shifted
+    lo_of = np.array(bounds[:-1], dtype=np.intp)  # bin range of each level's cell
+    hi_of = np.array(bounds[1:], dtype=np.intp)
     for e in empty:
         j = int(np.argmax(d))
         while d[j] > 0.0:
-            lo, hi = int(bounds[j]), int(bounds[j + 1])
+            lo, hi = int(lo_of[j]), int(hi_of[j])
+            # split at the centroid: values below it go left, the rest right
+            # (shifted[m-1] < y[j] <= shifted[m], so the halves hold distinct
+            # values); a centroid at the edge of its cell means a pure cell
             m = int(np.searchsorted(shifted[lo:hi], y[j], side="left")) + lo
-            m = min(max(m, lo + 1), hi - 1)
-            l0, r0 = p0[m] - p0[lo], p0[hi] - p0[m]
-            if l0 > 0.0 and r0 > 0.0:
-                break
+            if lo < m < hi:
+                l0, r0 = p0[m] - p0[lo], p0[hi] - p0[m]
+                if l0 > 0.0 and r0 > 0.0:
+                    break
             d[j] = 0.0  # this cell cannot be split; try the next worst
             j = int(np.argmax(d))
         if not d[j] > 0.0:
@@ -307,6 +318,8 @@ def _split_worst(S, y, bounds, pre):
         y[j], y[e] = yl, yr
         d[j] = max(l2 - l1 * yl, 0.0)
         d[e] = max(r2 - r1 * yr, 0.0)
+        hi_of[j] = m
+        lo_of[e], hi_of[e] = m, hi
     y.sort()
     return float(d.sum()), stuck
 
@@ -354,12 +367,14 @@ def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
             s1 = g1[1:] - g1[:-1]
             y_new = s1 / s0
             D = total2 - s1.dot(y_new)
-            if D != D:  # NaN: some cell is empty
+            if not -_HUGE < D < _HUGE:  # NaN or inf: some cell is empty
                 S = pre.moments(b)
                 occ = s0 > 0.0
                 y_new[~occ] = y[~occ]
                 D, stuck = _split_worst(S, y_new, b, pre)
             y = y_new
+            if D < 0.0:
+                D = 0.0  # rounding of total2 - s1.y on an exact fit
             if record:
                 history.append(D)
             if stuck or D <= 0.0 or D_prev - D <= tol * D_prev:
@@ -369,13 +384,12 @@ def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
     return y, it, converged, history, stuck
 
 
-def _finish_histogram(pre: HistogramPrefix, y, count, version):
-    """Codebook from shifted levels, with its exact MSE and cell probabilities.
+def _finish_histogram(pre: HistogramPrefix, lv, count, version):
+    """Codebook from levels, with its exact MSE and cell probabilities.
 
     The figures are those of the returned codebook (its own nearest-
     neighbour partition of the histogram), computed from the prefix sums.
     """
-    lv = y + pre.ref
     ok = lv.size == count
     if ok:
         gaps = np.diff(lv)
@@ -395,6 +409,12 @@ def _finish_histogram(pre: HistogramPrefix, y, count, version):
     s0 = g0[1:] - g0[:-1]
     s1 = g1[1:] - g1[:-1]
     mse = pre.total2 - 2.0 * float(lv.dot(s1)) + float((lv * lv).dot(s0))
+    if mse < 1e-13 * pre.total2:
+        # at the rounding level of the prefix sums (a near-exact fit): measure
+        # directly, so that an exact reproduction reports exactly zero
+        idx = np.repeat(np.arange(count), np.diff(b))
+        err = pre.centers - cb.levels[idx]
+        mse = float(pre.weights().dot(err * err))
     return cb, max(mse, 0.0), s0
 
 
@@ -485,17 +505,17 @@ def lloyd_max_histogram(
     if pre.occupied == 1:
         # constant signal: one value, spare levels spread around it
         it, converged = 0, True
-        w = pre.weights()
-        y = pre.shifted[np.argmax(w)].reshape(1)
+        lv = pre.centers[np.argmax(pre.weights())].reshape(1)
     elif max_iter == 0:
         it, converged = 0, False
+        lv = y + pre.ref
     else:
         y, it, converged, history, stuck = _lloyd_core(pre, y, float(tol), max_iter, record)
+        lv = y + pre.ref
         if stuck:
             # all occupied cells are pure: keep one level per occupied value
-            w = pre.weights()
-            y = pre.shifted[w > 0]
-    cb, mse, probs = _finish_histogram(pre, y, count, version)
+            lv = pre.centers[pre.weights() > 0]
+    cb, mse, probs = _finish_histogram(pre, lv, count, version)
     p = probs[probs > 0.0]
     entropy = max(-float(p.dot(np.log2(p))), 0.0)
     rep = DesignReport(
@@ -559,7 +579,10 @@ def lloyd_max_samples(
         levels=levels, init=init, prefix=pre, tol=tol, max_iter=max_iter,
         record=record, version=version, method="lloyd-max",
     )
-    return cb, _replace(rep, reference="samples")
+    # measure on the samples themselves (exact, O(N))
+    err = x - cb.levels[np.searchsorted(cb.thresholds, x, side="right")]
+    mse = float(np.dot(err, err) / x.size)
+    return cb, _replace(rep, reference="samples", mse=mse, snr_db=snr_db(rep.power, mse))
 
 
 def _replace(rep: DesignReport, **changes) -> DesignReport:

@@ -26,6 +26,7 @@ import numpy as np
 from pydantic import Field, model_validator
 
 from streamq.engine.blocks import CodebookUpdate, IndexBlock, Packet, StreamSpec, index_dtype
+from streamq.engine.delay import DelayLine
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
 from streamq.nodes import coding
@@ -63,6 +64,9 @@ class EncoderConfig(NodeConfig):
     a: float = Field(87.6, ge=1, description="A-law: A")
     grid_bits: int = Field(16, ge=8, le=32, description="side info: levels are sent on a grid of "
                                                         "this many bits (full scale = 1)")
+    codebooks_from: str | None = Field(
+        None, description="replay: apply the codebook announcements of this index file (e.g. "
+                          "recorded in a live run) instead of designing")
     window: Duration = Field(Duration(500, "ms"), description="backward mode: decoded past used")
     hop: Duration = Field(Duration(100, "ms"), description="backward mode: time between redesigns")
 
@@ -75,7 +79,7 @@ class EncoderConfig(NodeConfig):
             raise ValueError(why)
         if self.method in coding.G711 and self.n_levels != 256:
             raise ValueError(f"{self.method} has 256 levels (bits = 8)")
-        if self.adapt in ("trailing", "lookahead") and self.pdf is None:
+        if self.adapt in ("trailing", "lookahead") and self.pdf is None and self.codebooks_from is None:
             raise ValueError(f"adapt = \"{self.adapt}\" needs a pdf-estimator: set field 'pdf'")
         if self.method == "ecsq" and self.entropy is None:
             raise ValueError("method \"ecsq\" needs a target: set field 'entropy' (bits/sample)")
@@ -164,12 +168,52 @@ class Encoder(Node):
         # the first codebook of every channel is in force from sample 0
         for ch in range(self.C):
             self._announce(0, ch, self.current[ch], bits0)
+        self.replay = None
+        self.replaying = c.codebooks_from is not None
+        if self.replaying:
+            self._open_replay(ctx)
+        # live runs: designs go to the worker thread; finished ones apply at the next block
+        self.live = bool(ctx.live and ctx.offload is not None) and self.replay is None
+        self.jobs: list = []
+        self.worker_errors: list[str] = []
         self.preroll_index = int(first.encode(np.zeros(1))[0])
-        self.delay_line = np.zeros((self.delay, self.C)) if self.delay else None
+        self.delay_line = DelayLine(self.delay, self.C)
         self.dtype = index_dtype(self.L)
         return StreamSpec("index", self.rate, self.C, spec.latency + self.delay, None, spec.frames,
                           {"coding": coding_info, "n_levels": self.L,
                            "index_dtype": self.dtype.name})
+
+    def _open_replay(self, ctx) -> None:
+        from streamq.engine.indexio import IndexReader
+        path = ctx.resolve_input(self.config.codebooks_from)
+        try:
+            reader = IndexReader(path)
+        except Exception as exc:
+            raise self.fail("codebooks_from", str(exc)) from None
+        info = reader.spec.extra
+        if int(info.get("n_levels", 0)) != self.L or reader.spec.channels != self.C:
+            reader.close()
+            raise self.fail("codebooks_from", f"{path} holds {reader.spec.channels} channel(s) of "
+                                              f"{info.get('n_levels')} levels; this encoder has "
+                                              f"{self.C} of {self.L}")
+        self.replay = iter(reader)
+        self.replay_reader = reader
+        self.replay_buf: list[CodebookUpdate] = []
+        self.pending = []   # the recorded stream brings its own first codebooks
+        self.version = [0] * self.C
+        self.updates = self.side_bits = 0
+
+    def _replayed(self, e: int) -> list[CodebookUpdate]:
+        """Recorded announcements with at_sample < e, in order."""
+        while self.replay is not None and (not self.replay_buf or self.replay_buf[-1].at_sample < e):
+            pkt = next(self.replay, None)
+            if pkt is None:
+                self.replay = None
+                break
+            self.replay_buf.extend(pkt.events)
+        out = [u for u in self.replay_buf if u.at_sample < e]
+        self.replay_buf = [u for u in self.replay_buf if u.at_sample >= e]
+        return out
 
     def _read_training(self, ctx) -> np.ndarray:
         from streamq.engine.audiofile import open_for_reading
@@ -225,13 +269,15 @@ class Encoder(Node):
             return cb.encode_int16((x * 32768.0).astype(np.int16))
         return cb.encode(x)
 
+    def close(self, complete):
+        if getattr(self, "replay_reader", None) is not None:
+            self.replay_reader.close()
+
     def step(self, frames, inputs) -> Packet:
         pkt = inputs["input"]
         s, e = pkt.block.start, pkt.block.start + frames
         x = pkt.block.data
-        if self.delay:
-            both = np.concatenate([self.delay_line, x])
-            x, self.delay_line = both[:frames], both[frames:]
+        x = self.delay_line.push(x)
         out = np.empty((frames, self.C), dtype=self.dtype)
         at_start = list(self.in_force)
         if self.backward is not None:
@@ -250,7 +296,20 @@ class Encoder(Node):
             in_force = list(self.current)
             # designs happen in sample order, each warm-started from the one before
             changes: list[list[tuple[int, object]]] = [[] for _ in range(self.C)]
-            if self.config.adapt in ("trailing", "lookahead"):
+            if self.replaying:
+                from streamq.design import Codebook
+                for u in self._replayed(e):
+                    cb = Codebook(levels=u.levels, thresholds=u.thresholds, version=u.version)
+                    self.current[u.channel] = cb
+                    self.version[u.channel] = u.version
+                    self.in_force[u.channel] = u.version
+                    self.pending.append(u)
+                    self.updates += 1
+                    self.side_bits += int(u.side_info_bits)
+                    changes[u.channel].append((u.at_sample, cb))
+            elif self.live:
+                self._live_designs(s, inputs, changes)
+            elif self.config.adapt in ("trailing", "lookahead"):
                 snaps = [ev for ev in inputs["pdf"].events
                          if getattr(ev, "counts", None) is not None and s <= ev.at_sample < e]
                 for ev in sorted(snaps, key=lambda ev: (ev.at_sample, ev.channel)):
@@ -281,8 +340,35 @@ class Encoder(Node):
             for ch in range(self.C))
         return Packet(IndexBlock(out, s, self.rate, versions), tuple(events))
 
+    def _live_designs(self, s: int, inputs, changes) -> None:
+        """Live runs: apply the designs the worker has finished (at this block's
+        first sample), then hand it the new snapshots. Only reference swaps
+        and list appends happen here: the design itself runs off the audio path."""
+        while self.jobs and self.jobs[0][1].done():
+            snap, fut = self.jobs.pop(0)
+            exc = fut.exception()
+            if exc is not None or fut.result() is None:
+                if exc is not None:   # keep the last good codebook; say what went wrong
+                    self.worker_errors.append(f"design at sample {snap.at_sample}, channel "
+                                             f"{snap.channel}: {exc}")
+                continue
+            self._announce(s, snap.channel, *fut.result())
+            self.ref[snap.channel] = snap
+            self.last_design[snap.channel] = s
+            changes[snap.channel].append((s, self.current[snap.channel]))
+        if self.config.adapt in ("trailing", "lookahead"):
+            for ev in inputs["pdf"].events:
+                if getattr(ev, "counts", None) is None:
+                    continue
+                if any(j[0].channel == ev.channel for j in self.jobs):
+                    continue   # the worker is behind: skip, the next snapshot is fresher
+                if self._consider(ev):
+                    self.jobs.append((ev, self.ctx.offload(self._design, ev)))
+
     def report(self):
-        return {"codebook_updates": self.updates, "side_info_bits": self.side_bits,
+        extra = {"worker_errors": len(self.worker_errors),
+                 "worker_error": self.worker_errors[-1]} if self.worker_errors else {}
+        return {**extra, "codebook_updates": self.updates, "side_info_bits": self.side_bits,
                 "levels": self.L, "latency_frames": self.delay,
                 "drift": [d for d in self.drift]}
 
@@ -290,7 +376,7 @@ class Encoder(Node):
         st = {"version": list(self.version), "current": list(self.current), "pending": list(self.pending),
               "ref": list(self.ref), "last_design": list(self.last_design),
               "updates": self.updates, "side_bits": self.side_bits,
-              "delay_line": None if self.delay_line is None else self.delay_line.copy()}
+              "delay_line": self.delay_line.get_state()}
         if self.backward is not None:
             st["backward"] = self.backward.get_state()
         return st
@@ -299,7 +385,6 @@ class Encoder(Node):
         self.version, self.updates, self.side_bits = list(st["version"]), st["updates"], st["side_bits"]
         self.current, self.pending = list(st["current"]), list(st["pending"])
         self.ref, self.last_design = list(st["ref"]), list(st["last_design"])
-        if st["delay_line"] is not None:
-            self.delay_line = st["delay_line"].copy()
+        self.delay_line.set_state(st["delay_line"])
         if self.backward is not None:
             self.backward.set_state(st["backward"])

@@ -200,11 +200,13 @@ class PdfEstimator(Node):
         if self.half_life is not None and self.half_life < 1:
             raise self.fail("half_life", "half_life must be at least 1 sample")
         self.buf = np.zeros((self.W, self.C))  # ring of the last W samples
-        self.filled = 0     # samples seen so far
+        self.written = 0
         self.pending: list[PdfSnapshot] = []  # snapshots due at the start of the next packet
         self.last: list[PdfSnapshot | None] = [None] * self.C
         self.snapshots = 0
-        self.peak_clipped = 0
+        self.live = bool(ctx.live and ctx.offload is not None)
+        self.jobs: list = []
+        self.worker_errors = 0
         return StreamSpec("signal", rate, self.C, spec.latency, spec.int_bits, spec.frames,
                           {**spec.extra, "estimator": {"window": self.W, "hop": self.H,
                                                         "bins": self.config.bins,
@@ -212,18 +214,30 @@ class PdfEstimator(Node):
                                                         "fit": self.config.fit}})
 
     def _push(self, data: np.ndarray) -> None:
+        """Append to the ring of the last W samples: O(len(data)), no shifting."""
         n = data.shape[0]
         if n == 0:
             return
         if n >= self.W:
-            self.buf[:] = data[-self.W:]
-        else:
-            self.buf[:-n] = self.buf[n:]
-            self.buf[-n:] = data
+            data, n = data[-self.W:], self.W
+        at = self.written % self.W
+        first = min(n, self.W - at)
+        self.buf[at:at + first] = data[:first]
+        if first < n:
+            self.buf[:n - first] = data[first:]
+        self.written += n
 
-    def _snapshot(self, t: int) -> list[PdfSnapshot]:
+    def _window(self, have: int) -> np.ndarray:
+        """The last ``have`` samples, oldest first (a copy)."""
+        end = self.written % self.W
+        if have <= end:
+            return self.buf[end - have:end].copy()
+        return np.concatenate([self.buf[self.W - (have - end):], self.buf[:end]])
+
+    def _snapshot(self, t: int, win: np.ndarray | None = None) -> list[PdfSnapshot]:
         have = min(self.W, t)
-        win = self.buf[self.W - have:]
+        if win is None:
+            win = self._window(have)
         weights = None
         if self.half_life:
             age = np.arange(have - 1, -1, -1, dtype=np.float64)
@@ -248,12 +262,23 @@ class PdfEstimator(Node):
         s = pkt.block.start
         events = list(self.pending)
         self.pending = []
+        while self.jobs and self.jobs[0].done():
+            fut = self.jobs.pop(0)
+            if fut.exception() is None:
+                events.extend(fut.result())
+            else:
+                self.worker_errors += 1
         # hop boundaries t with s < t <= s + frames, each using data up to t
         first = (s // self.H + 1) * self.H
         pos = 0
         for t in range(first, s + frames + 1, self.H):
             self._push(data[pos:t - s])
             pos = t - s
+            if self.live:
+                # live runs: the worker computes the snapshot from a copy of the
+                # window; it travels with the first block after it is ready
+                self.jobs.append(self.ctx.offload(self._snapshot, t, self._window(min(self.W, t))))
+                continue
             snaps = self._snapshot(t)
             if t < s + frames:
                 events.extend(snaps)
@@ -261,19 +286,19 @@ class PdfEstimator(Node):
                 self.pending.extend(snaps)
         if pos < frames:
             self._push(data[pos:])
-        self.filled = s + frames
         return Packet(pkt.block, tuple(pkt.events) + tuple(events), pkt.indices)
 
     def report(self):
-        return {"snapshots": self.snapshots, "window_samples": self.W, "hop_samples": self.H}
+        return {"snapshots": self.snapshots, "window_samples": self.W, "hop_samples": self.H,
+                "worker_errors": self.worker_errors}
 
     def get_state(self):
-        return {"buf": self.buf.copy(), "filled": self.filled, "pending": list(self.pending),
+        return {"buf": self.buf.copy(), "written": self.written, "pending": list(self.pending),
                 "last": list(self.last), "snapshots": self.snapshots}
 
     def set_state(self, state):
         self.buf = state["buf"].copy()
-        self.filled = state["filled"]
+        self.written = state["written"]
         self.pending = list(state["pending"])
         self.last = list(state["last"])
         self.snapshots = state["snapshots"]

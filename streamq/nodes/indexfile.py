@@ -13,7 +13,8 @@ from typing import Literal
 
 from pydantic import Field
 
-from streamq.engine.blocks import StreamSpec
+from streamq.engine.background import BackgroundWriter
+from streamq.engine.blocks import IndexBlock, Packet, StreamSpec
 from streamq.engine.indexio import IndexReader, IndexWriter
 from streamq.engine.node import Node, NodeConfig, RunContext, SourceNode
 from streamq.engine.registry import register
@@ -42,6 +43,7 @@ class IndexSink(Node):
         self.path: Path | None = None
         self.latency = 0
         self.stepped = False
+        self.background = None
 
     def open(self, specs, ctx: RunContext):
         spec = specs["input"]
@@ -60,17 +62,31 @@ class IndexSink(Node):
             self.writer = IndexWriter(self.path, spec)
         except StreamqError as exc:
             raise self.fail("path", str(exc)) from None
+        # live runs: the audio callback only queues the packet; a thread writes
+        self.background = BackgroundWriter(self.writer.write) if ctx.live else None
         return None
 
     def step(self, frames, inputs):
         self.stepped = True
         try:
-            self.writer.write(inputs["input"])
+            if self.background is not None:
+                pkt = inputs["input"]
+                self.background.put(Packet(IndexBlock(pkt.block.data.copy(), pkt.block.start,
+                                                      pkt.block.rate, pkt.block.versions),
+                                           pkt.events))
+            else:
+                self.writer.write(inputs["input"])
         except StreamqError as exc:
             raise self.fail("input", str(exc)) from None
         return None
 
     def close(self, complete):
+        if getattr(self, "background", None) is not None:
+            bg, self.background = self.background, None
+            try:
+                bg.close()
+            except StreamqError as exc:
+                raise self.fail("input", str(exc)) from None
         if self.writer is None:
             return
         if not complete and not self.stepped:

@@ -17,6 +17,7 @@ import numpy as np
 from pydantic import Field
 
 from streamq.engine.blocks import CodebookUpdate, Packet, StreamSpec
+from streamq.engine.delay import DelayLine
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
 
@@ -81,7 +82,7 @@ class ErrorMeter(Node):
         self.L = int(inp.extra.get("n_levels", 0)) or None
         self.out_dir = ctx.out_dir
         C = self.C
-        self.refbuf = np.zeros((self.d, C))
+        self.refdelay = DelayLine(self.d, C)
         self.t = 0          # output frames seen
         self.m = 0          # measured samples (after the latency pre-roll)
         z = np.zeros(C)
@@ -170,9 +171,7 @@ class ErrorMeter(Node):
         pkt = inputs["input"]
         x = pkt.block.data
         s = pkt.block.start
-        if self.d:
-            both = np.concatenate([self.refbuf, ref])
-            ref, self.refbuf = both[:frames], both[frames:]
+        ref = self.refdelay.push(ref)
         updates = sorted((u for u in pkt.events if isinstance(u, CodebookUpdate)),
                          key=lambda u: u.at_sample)
         idx = pkt.indices.data if pkt.indices is not None else None
@@ -351,6 +350,21 @@ class ErrorMeter(Node):
                                     f"{10 * np.log10(max(npow, 1e-30)):.3f}"])
         except OSError:
             pass  # the report still carries the totals
+
+    def live_stats(self) -> dict:
+        """Running figures for the live terminal meter (read from another thread:
+        only plain attribute reads)."""
+        last = self.rows[-1] if self.rows else {}
+        L = self.levels_seen
+        fixed = math.ceil(math.log2(L)) if L else None
+        side = self.side_bits / (self.t * self.C) if self.t else 0.0
+        seg_n = float(self.seg_n.sum())
+        return {"snr_db": _db(float(self.sig.sum()), float(self.noi.sum())),
+                "segsnr_db": float(self.seg_sum.sum() / seg_n) if seg_n else None,
+                "recent_snr_db": last.get("snr_db"), "recent_segsnr_db": last.get("segsnr_db"),
+                "bits_per_sample": None if fixed is None else fixed + side,
+                "side_info_bits_per_sample": side, "codebook_version": self.version[0],
+                "codebook_updates": self.updates, "seconds": self.m / self.rate}
 
     def report(self):
         C = self.C

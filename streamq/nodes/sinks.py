@@ -7,6 +7,7 @@ from typing import Literal
 from pydantic import Field
 
 from streamq.engine.audiofile import SafeWriter
+from streamq.engine.background import BackgroundWriter
 from streamq.engine.node import Node, NodeConfig
 from streamq.engine.registry import register
 
@@ -43,13 +44,24 @@ class FileSink(Node):
         self.latency = spec.latency
         self.writer = SafeWriter(path, spec.rate, spec.channels, self.config.subtype,
                                  lambda m: self.fail("path", m))
+        # live runs: the audio callback only queues a copy; a thread writes
+        self.background = BackgroundWriter(self.writer.write) if ctx.live else None
         return None
 
     def step(self, frames, inputs):
-        self.writer.write(inputs["input"].block.data)
+        data = inputs["input"].block.data
+        if self.background is not None:
+            self.background.put(data.copy())
+        else:
+            self.writer.write(data)
         return None
 
     def close(self, complete):
+        if getattr(self, "background", None) is not None:
+            try:
+                self.background.close()
+            finally:
+                self.background = None
         if self.writer is not None:
             if complete or self.writer.frames:
                 self.writer.close()

@@ -1,0 +1,49 @@
+"""Writing files off the audio path: in live runs, sinks hand their blocks to
+a thread that does the I/O, so the audio callback only copies (DESIGN.md
+rule 4)."""
+
+from __future__ import annotations
+
+import queue
+import threading
+from typing import Any, Callable
+
+_STOP = object()
+
+
+class BackgroundWriter:
+    """Calls ``write(item)`` on a thread, in order. A failure is kept and
+    raised by the next :meth:`put` or by :meth:`close` (after which nothing
+    more is written)."""
+
+    def __init__(self, write: Callable[[Any], None], name: str = "streamq-writer"):
+        self._write = write
+        self._q: queue.SimpleQueue = queue.SimpleQueue()
+        self.error: BaseException | None = None
+        self._t = threading.Thread(target=self._run, name=name, daemon=True)
+        self._t.start()
+
+    def _run(self) -> None:
+        while True:
+            item = self._q.get()
+            if item is _STOP:
+                return
+            if self.error is not None:
+                continue
+            try:
+                self._write(item)
+            except BaseException as exc:  # kept for the main thread
+                self.error = exc
+
+    def put(self, item: Any) -> None:
+        if self.error is not None:
+            raise self.error
+        self._q.put(item)
+
+    def close(self) -> None:
+        """Write what is queued, stop the thread, raise a kept failure."""
+        if self._t.is_alive():
+            self._q.put(_STOP)
+            self._t.join()
+        if self.error is not None:
+            raise self.error

@@ -1,0 +1,1 @@
+"""Live operation: device I/O through sounddevice (PortAudio), the live runner."""

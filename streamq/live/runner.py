@@ -1,0 +1,262 @@
+"""Running a graph on a live device.
+
+One PortAudio stream (duplex when the graph has both a live input and a
+live output) drives the graph: its callback feeds the input node, runs one
+graph step of ``block`` frames and copies the monitor block out. That step
+is O(block) vectorised work (DESIGN.md rule 4): PDF snapshots and codebook
+designs go to one worker thread through ``ctx.offload`` and come back as
+reference swaps at a later block boundary, with the sample recorded in the
+CodebookUpdate, so an offline replay with the recorded events is bit-exact.
+"""
+
+from __future__ import annotations
+
+import sys
+import threading
+import time
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+
+from streamq.engine.graph import Graph
+from streamq.engine.scheduler import _step_all, build, make_report, write_report
+from streamq.errors import StreamqError
+
+STATUS_FLAGS = ("input_underflow", "input_overflow", "output_underflow", "output_overflow",
+                "priming_output")
+TIMES = 1 << 16  # callback work times kept (a ring: constant memory)
+
+
+def _sounddevice():
+    try:
+        from streamq.live.devices import import_sounddevice
+    except ImportError:  # pragma: no cover - devices module always ships
+        import sounddevice
+        return sounddevice
+    return import_sounddevice()
+
+
+def resolve_device(sd, device, kind: str, node_id: str):
+    """A device index for a name (or part of one) or an index; None = default."""
+    if device is None:
+        try:
+            idx = sd.default.device[0 if kind == "input" else 1]
+        except Exception:
+            idx = -1
+        if idx is None or idx < 0:
+            raise StreamqError(f"node '{node_id}': no default {kind} device; name one with field "
+                               f"'device' (see `streamq devices`)")
+        return idx
+    try:
+        return sd.query_devices(device, kind)["index"]
+    except ValueError as exc:
+        raise StreamqError(f"node '{node_id}', field 'device': {str(exc).splitlines()[0]} "
+                           f"(see `streamq devices`)") from None
+
+
+class LiveRun:
+    """The state shared between the audio callback and the main thread."""
+
+    def __init__(self, built, block: int, stop_after: int | None):
+        from streamq.nodes.live import LiveInput, LiveOutput
+        self.built = built
+        self.block = block
+        self.stop_after = stop_after
+        nodes = built.graph.nodes
+        self.inp = [n for n in nodes.values() if isinstance(n, LiveInput)]
+        self.out = [n for n in nodes.values() if isinstance(n, LiveOutput)]
+        if len(self.inp) > 1 or len(self.out) > 1:
+            raise StreamqError("a live graph has at most one live-input and one live-output "
+                               "(one duplex stream)")
+        if not self.inp and built.length is None:
+            raise StreamqError("a live graph needs a live-input or a finite source")
+        self.length = built.length
+        self.pos = 0
+        self.times = np.zeros(TIMES)
+        self.calls = 0
+        self.status = dict.fromkeys(STATUS_FLAGS, 0)
+        self.error: BaseException | None = None
+        self.done = threading.Event()
+
+    def callback(self, *args):
+        import sounddevice as sd
+        t0 = time.perf_counter()
+        if len(args) == 5:
+            indata, outdata, frames, _t, status = args
+        elif self.inp:
+            indata, frames, _t, status = args
+            outdata = None
+        else:
+            outdata, frames, _t, status = args
+            indata = None
+        if status:
+            for flag in STATUS_FLAGS:
+                if getattr(status, flag, False):
+                    self.status[flag] += 1
+        try:
+            n = frames
+            if self.length is not None:
+                n = min(frames, self.length - self.pos)
+            if n > 0:
+                if self.inp:
+                    self.inp[0].feed(indata[:n])
+                _step_all(self.built, n)
+                if outdata is not None:
+                    outdata[:n] = self.out[0].block
+                    outdata[n:] = 0
+                self.pos += n
+            elif outdata is not None:
+                outdata[:] = 0
+        except BaseException as exc:  # stop the stream; the main thread reports it
+            self.error = exc
+            if outdata is not None:
+                outdata[:] = 0
+            self.done.set()
+            raise sd.CallbackAbort from None
+        self.times[self.calls % TIMES] = time.perf_counter() - t0
+        self.calls += 1
+        if (self.stop_after is not None and self.pos >= self.stop_after) or \
+                (self.length is not None and self.pos >= self.length):
+            self.done.set()
+            raise sd.CallbackStop
+
+    @property
+    def xruns(self) -> int:
+        return (self.status["input_overflow"] + self.status["output_underflow"]
+                + self.status["input_underflow"] + self.status["output_overflow"])
+
+    def timing(self) -> dict:
+        n = min(self.calls, TIMES)
+        if n == 0:
+            return {}
+        ms = self.times[:n] * 1000.0
+        return {f"p{q}": float(np.percentile(ms, q)) for q in (50, 90, 99)} | {"max": float(ms.max())}
+
+
+def _gather(run: LiveRun) -> dict:
+    """Figures for the terminal meter (main thread; plain reads)."""
+    stats = {"seconds": run.pos / run.built.ctx.sample_rate, "xruns": run.xruns, "meters": {}}
+    t = run.timing()
+    block_ms = 1000.0 * run.block / run.built.ctx.sample_rate
+    stats["load"] = t.get("p99", 0.0) / block_ms if t else 0.0
+    for nid, node in run.built.graph.nodes.items():
+        if hasattr(node, "live_stats"):
+            stats["meters"][nid] = node.live_stats()
+        if node.kind == "encoder":
+            d = [v for v in getattr(node, "drift", []) if v is not None]
+            if d:
+                stats["drift"] = max(d)
+            stats["codebook_version"] = max(getattr(node, "version", [0]) or [0])
+    first = next(iter(stats["meters"].values()), None)
+    if first:
+        for k in ("snr_db", "segsnr_db", "bits_per_sample", "side_info_bits_per_sample"):
+            stats[k] = first.get(k)
+        stats.setdefault("codebook_version", first.get("codebook_version"))
+    return stats
+
+
+def run_live(graph: Graph, out_dir: Path, args) -> int:
+    """`streamq run` for graphs with live nodes."""
+    sd = _sounddevice()
+    block = int(getattr(args, "block", None) or graph.header.block)
+    seconds = getattr(args, "seconds", None)
+    executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamq-design")
+    built = build(graph, out_dir, live=True, offload=executor.submit)
+    complete = False
+    try:
+        rate = built.ctx.sample_rate
+        run = LiveRun(built, block, None if seconds is None else int(round(seconds * rate)))
+        kwargs = dict(samplerate=rate, blocksize=block, dtype="float32", callback=run.callback)
+        try:
+            if run.inp and run.out:
+                i = resolve_device(sd, run.inp[0].config.device, "input", run.inp[0].id)
+                o = resolve_device(sd, run.out[0].config.device, "output", run.out[0].id)
+                stream = sd.Stream(device=(i, o), channels=(run.inp[0].spec.channels,
+                                                            run.out[0].C), **kwargs)
+            elif run.inp:
+                i = resolve_device(sd, run.inp[0].config.device, "input", run.inp[0].id)
+                stream = sd.InputStream(device=i, channels=run.inp[0].spec.channels, **kwargs)
+            else:
+                if not run.out:
+                    raise StreamqError("a live run needs a live-input or a live-output node")
+                o = resolve_device(sd, run.out[0].config.device, "output", run.out[0].id)
+                stream = sd.OutputStream(device=o, channels=run.out[0].C, **kwargs)
+        except sd.PortAudioError as exc:
+            raise StreamqError(f"cannot open the audio stream at {rate} Hz, block {block}: "
+                               f"{str(exc).splitlines()[0]} (choose a supported sample_rate or "
+                               f"device; see `streamq devices`)") from None
+        old_switch = sys.getswitchinterval()
+        sys.setswitchinterval(0.0005)  # the design worker must not hold the GIL for long
+        meter = _terminal_meter(args)
+        interrupted = False
+        try:
+            with stream:
+                try:
+                    while not run.done.wait(0.25):
+                        if not stream.active:
+                            break
+                        if meter:
+                            meter.update(_gather(run))
+                except KeyboardInterrupt:
+                    interrupted = True
+        finally:
+            sys.setswitchinterval(old_switch)
+            if meter:
+                meter.close()
+        if run.error is not None:
+            err = run.error
+            if isinstance(err, StreamqError):
+                raise err
+            raise StreamqError(f"live run stopped at sample {run.pos}: "
+                               f"{type(err).__name__}: {err}") from None
+        for nid in built.graph.order:
+            built.graph.nodes[nid].finish()
+        complete = not interrupted
+        executor.shutdown(wait=True, cancel_futures=True)
+    finally:
+        executor.shutdown(wait=False, cancel_futures=True)
+        for nid in built.graph.order:
+            try:
+                built.graph.nodes[nid].close(complete)
+            except StreamqError:
+                pass
+    live = {"block": block, "block_ms": 1000.0 * block / rate, "xruns": run.xruns,
+            "status": run.status, "callback_ms": run.timing(), "callbacks": run.calls,
+            "worker_errors": sum(getattr(n, "worker_errors", 0) if isinstance(
+                getattr(n, "worker_errors", 0), int) else len(n.worker_errors)
+                for n in built.graph.nodes.values())}
+    report = make_report(built, complete=True, samples=run.pos, seconds=run.pos / rate,
+                         extra={"live": live})
+    report["complete"] = True  # a live run stopped by Ctrl-C or --seconds is a whole run
+    report["stopped_by"] = "interrupt" if interrupted else ("seconds" if seconds else "end")
+    write_report(out_dir, report)
+    _after(out_dir, report, args)
+    t = live["callback_ms"]
+    print(f"{graph.name}: live run of {run.pos / rate:.1f} s, {run.xruns} xruns, callback "
+          f"p99 {t.get('p99', 0):.3f} ms of a {live['block_ms']:.2f} ms block; output in {out_dir}/")
+    for nid, m in report["meters"].items():
+        print(f"  {nid}: SNR {m.get('snr_db') or float('nan'):.2f} dB, segmental SNR "
+              f"{m.get('segsnr_db') or float('nan'):.2f} dB, {m.get('bits_per_sample') or 0:.3f} bits/sample")
+    return 130 if interrupted else 0
+
+
+def _terminal_meter(args):
+    if getattr(args, "quiet", False):
+        return None
+    try:
+        from streamq.report.terminal import LiveMeter
+    except ImportError:
+        return None
+    return LiveMeter()
+
+
+def _after(out_dir, report, args) -> None:
+    try:
+        from streamq.report import write_report_files
+    except ImportError:
+        return
+    try:
+        write_report_files(out_dir, report)
+    except Exception as exc:  # plots must never cost the report
+        print(f"streamq: warning: plots not written: {exc}", file=sys.stderr)

@@ -213,14 +213,14 @@ def test_dask_cluster_gives_the_same_results(archive, local_run, tmp_path):
                                   host="127.0.0.1", dashboard_address=None) as cluster:
         rc = batch_main(archive["graph"], "--inputs", archive["root"], "--out", out,
                         "--cluster", cluster.scheduler_address, "--quiet")
-    assert rc == 1
+    assert rc == 1, _summary(out)["counts"]
     assert "Dask" in _summary(out)["engine"]
     local, remote = _by_input(local_run), _by_input(out)
     assert set(local) == set(remote)
     for inp, e in remote.items():
-        assert e["status"] == local[inp]["status"]
+        assert e["status"] == local[inp]["status"], (e, local[inp])
         if e["status"] == "done":
-            assert _report(e["folder"])["meters"] == _report(local[inp]["folder"])["meters"]
+            assert _report(e["folder"])["meters"] == _report(local[inp]["folder"])["meters"], inp
         else:
             assert e["error"] == local[inp]["error"]
     assert _summary(out)["totals"] == _summary(local_run)["totals"]

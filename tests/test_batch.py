@@ -213,6 +213,15 @@ def test_dask_cluster_gives_the_same_results(archive, local_run, tmp_path):
                                   host="127.0.0.1", dashboard_address=None) as cluster:
         rc = batch_main(archive["graph"], "--inputs", archive["root"], "--out", out,
                         "--cluster", cluster.scheduler_address, "--quiet")
+        # Workers that cannot see a path (no shared storage) are named before any work.
+        from streamq.batch.engines import DaskCluster
+        from streamq.errors import StreamqError
+        engine = DaskCluster(cluster.scheduler_address)
+        try:
+            with pytest.raises(StreamqError, match="cannot see /no/such/share/out"):
+                engine.check_workers([str(archive["graph"]), "/no/such/share/out"])
+        finally:
+            engine.close()
     assert rc == 1, _summary(out)["counts"]
     assert "Dask" in _summary(out)["engine"]
     local, remote = _by_input(local_run), _by_input(out)

@@ -276,6 +276,7 @@ def _run_jobs(jobs, states, args, stop: _StopRequests, bar: BatchProgress,
             with _signals_held():
                 try:
                     engine = make_engine(args.workers, args.cluster, len(jobs))
+                    n_workers = engine.check_workers([jobs[0]["graph_file"], str(stop_file.parent)])
                     engine_name = engine.describe()
                     for job in jobs:
                         engine.submit(job, done_q)
@@ -284,6 +285,8 @@ def _run_jobs(jobs, states, args, stop: _StopRequests, bar: BatchProgress,
                     raise
                 except Exception as exc:
                     raise StreamqError(f"cannot start the batch workers: {one_line(exc)}") from None
+            if n_workers == 0:
+                bar.note(f"streamq: {engine_name} has no workers yet; the files wait for some")
             received = 0
             while received < submitted:
                 if stop.requests and not stopping:

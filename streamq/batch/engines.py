@@ -19,7 +19,7 @@ import re
 from concurrent.futures import ProcessPoolExecutor
 from typing import Any
 
-from streamq.batch.work import ignore_sigint, process_file
+from streamq.batch.work import ignore_sigint, missing_paths, one_line, process_file
 from streamq.errors import StreamqError
 
 CLUSTER_EXTRA = "streamq[cluster]"
@@ -37,6 +37,9 @@ def _start_method() -> str:
 
 class LocalPool:
     """A pool of worker processes on this machine."""
+
+    def check_workers(self, paths: list[str]) -> int:
+        return self.workers
 
     def __init__(self, workers: int):
         self.workers = workers
@@ -115,6 +118,21 @@ class DaskCluster:
             self.close()
             first = (str(exc).splitlines() or [type(exc).__name__])[0]
             raise StreamqError(f"--cluster {address}: cannot reach a Dask scheduler ({first})") from None
+
+    def check_workers(self, paths: list[str]) -> int:
+        """Make sure every worker has streamq and sees ``paths`` (graph, output
+        folder: they must be on shared storage); returns the worker count."""
+        try:
+            seen = self.client.run(missing_paths, list(paths))
+        except Exception as exc:
+            raise StreamqError(f"--cluster {self.address}: the Dask workers cannot run streamq "
+                               f"(is it installed on every worker?): {one_line(exc)}") from None
+        for worker, missing in sorted(seen.items()):
+            if missing:
+                raise StreamqError(f"--cluster {self.address}: Dask worker {worker} cannot see "
+                                   f"{missing[0]}; the graph, the inputs and --out must be on "
+                                   f"storage every worker shares, at the same paths")
+        return len(seen)
 
     def describe(self) -> str:
         try:

@@ -184,6 +184,11 @@ def process_file(job: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
+def missing_paths(paths: list[str]) -> list[str]:
+    """The ``paths`` this machine cannot see (run on each Dask worker before a batch)."""
+    return [p for p in paths if not os.path.exists(p)]
+
+
 def ignore_sigint() -> None:
     """Pool-worker initializer: Ctrl-C in a terminal reaches every process of the
     group; the coordinator handles it and tells the workers to stop."""

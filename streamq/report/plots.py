@@ -79,23 +79,29 @@ def time_unit(seconds: float) -> tuple[str, float]:
 
 
 def read_csv_columns(path: Path) -> dict[str, np.ndarray]:
-    """A CSV with a header row as float columns (empty cells become NaN)."""
+    """A CSV with a header row as float columns (empty or unreadable cells become NaN).
+
+    Streams the rows into compact arrays, so a two-hour series (72,000 rows)
+    costs a few megabytes, not a list of Python objects per cell.
+    """
+    from array import array
     with open(path, newline="", encoding="utf-8") as f:
-        rows = list(csv.reader(f))
-    if not rows:
-        return {}
-    head, body = rows[0], rows[1:]
-    cols: dict[str, np.ndarray] = {}
-    for j, name in enumerate(head):
-        vals = []
-        for r in body:
-            cell = r[j] if j < len(r) else ""
-            try:
-                vals.append(float(cell) if cell != "" else math.nan)
-            except ValueError:
-                vals.append(math.nan)
-        cols[name] = np.asarray(vals, dtype=np.float64)
-    return cols
+        reader = csv.reader(f)
+        head = next(reader, None)
+        if not head:
+            return {}
+        cols = [array("d") for _ in head]
+        n = len(head)
+        for row in reader:
+            for j in range(n):
+                cell = row[j] if j < len(row) else ""
+                try:
+                    v = float(cell) if cell else math.nan
+                except ValueError:
+                    v = math.nan
+                cols[j].append(v)
+    return {name: np.frombuffer(col, dtype=np.float64).copy() if len(col) else
+            np.zeros(0) for name, col in zip(head, cols)}
 
 
 # -- (1) histogram with the codebook on top ---------------------------------------

@@ -11,6 +11,7 @@ in a plugin's pyproject.toml::
 from __future__ import annotations
 
 import importlib
+import threading
 from importlib.metadata import entry_points
 
 from streamq.engine.node import Node, SourceNode
@@ -35,6 +36,10 @@ class Registry:
     def __init__(self) -> None:
         self._kinds: dict[str, type[Node]] = {}
         self._loaded = False
+        self._loading = False
+        # Several threads may validate graphs at once (e.g. a Dask worker with
+        # several threads): the others wait until the first has loaded every kind.
+        self._lock = threading.RLock()
 
     def add(self, cls: type[Node]) -> type[Node]:
         if not cls.kind:
@@ -50,7 +55,17 @@ class Registry:
     def _load(self) -> None:
         if self._loaded:
             return
-        self._loaded = True
+        with self._lock:
+            if self._loaded or self._loading:  # done meanwhile, or called again while importing
+                return
+            self._loading = True
+            try:
+                self._load_all()
+            finally:
+                self._loading = False
+                self._loaded = True
+
+    def _load_all(self) -> None:
         for mod in _BUILTIN_MODULES:
             try:
                 importlib.import_module(mod)

@@ -319,6 +319,41 @@ def test_changed_input_is_redone(tmp_path):
     assert _summary(out)["this_run"]["files_run"] == 3
 
 
+def test_files_run_in_threads_of_one_process(tmp_path):
+    """A Dask worker may run several files at once in threads: in a fresh process
+    (node kinds not loaded yet), four files started together all complete and
+    give what they give alone."""
+    for i in range(4):
+        _write(tmp_path / "in" / f"desk-{i}.wav", 1.0, 40 + i)
+    (tmp_path / "chain.toml").write_text(CHAIN)
+    code = """if True:
+        import json, sys, threading
+        from pathlib import Path
+        from streamq.batch.work import process_file
+        tmp = Path(sys.argv[1])
+        text = (tmp / "chain.toml").read_text()
+        res = {}
+        def one(i, where):
+            job = {"graph_text": text, "graph_file": str(tmp / "chain.toml"), "overrides": [],
+                   "node": "feed", "input": str(tmp / "in" / f"desk-{i}.wav"),
+                   "folder": str(tmp / where / str(i)), "setup": "s", "stop_file": str(tmp / "stop")}
+            res[(where, i)] = process_file(job)["status"]
+        threads = [threading.Thread(target=one, args=(i, "together")) for i in range(4)]
+        [t.start() for t in threads]
+        [t.join() for t in threads]
+        for i in range(4):
+            one(i, "alone")
+        print(json.dumps(sorted(set(res.values()))))
+    """
+    r = subprocess.run([sys.executable, "-c", code, str(tmp_path)], env=_env(),
+                       capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout) == ["done"], r.stdout
+    for i in range(4):
+        assert (_report(tmp_path / "together" / str(i))["meters"]
+                == _report(tmp_path / "alone" / str(i))["meters"])
+
+
 # -- bad input: one clear line, exit 2 ----------------------------------------------
 
 def _bad(capsys, *argv) -> str:

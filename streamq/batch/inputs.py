@@ -119,5 +119,5 @@ def folder_name(path: Path) -> str:
     absolute path, so equal names in different folders never share a folder and a
     re-run finds the same folder again."""
     stem = _UNSAFE.sub("-", Path(path).stem).strip("-.")[:48] or "input"
-    digest = hashlib.sha1(str(path).encode("utf-8", "surrogateescape")).hexdigest()[:8]
+    digest = hashlib.sha1(str(path).encode("utf-8", "surrogateescape")).hexdigest()[:12]
     return f"{stem}-{digest}"

@@ -40,21 +40,23 @@ def _codes(levels: np.ndarray, grid_bits: int) -> np.ndarray:
     return np.round(np.asarray(levels) * scale).astype(np.int64)
 
 
+def _rice_choice(d: np.ndarray) -> tuple[int, int]:
+    """(k, bits) of the shortest Rice code of the differences ``d``."""
+    if d.size == 0:
+        return 0, 0
+    top = min(int(max(1, int(d.max()).bit_length())), 2 ** HEADER_K_BITS - 1)
+    ks = np.arange(top + 1)
+    bits = (d[None, :] >> ks[:, None]).sum(axis=1) + d.size * (1 + ks)
+    k = int(np.argmin(bits))
+    return k, int(bits[k])
+
+
 def level_bits(levels: np.ndarray, grid_bits: int = 16) -> int:
     """Bits needed to send ``levels`` (already on the grid) with the code above."""
-    q = _codes(levels, grid_bits)
-    d = np.diff(q)
+    d = np.diff(_codes(levels, grid_bits))
     if np.any(d < 0):
         raise ValueError("levels must be non-decreasing")
-    if d.size == 0:
-        return grid_bits + HEADER_K_BITS
-    best = None
-    top = int(max(1, int(d.max()).bit_length()))
-    for k in range(0, min(top + 1, 2 ** HEADER_K_BITS)):
-        bits = int(np.sum(d >> k)) + d.size * (1 + k)
-        if best is None or bits < best:
-            best = bits
-    return grid_bits + HEADER_K_BITS + best
+    return grid_bits + HEADER_K_BITS + _rice_choice(d)[1]
 
 
 def encode_levels(levels: np.ndarray, grid_bits: int = 16) -> tuple[bytes, int]:
@@ -62,13 +64,7 @@ def encode_levels(levels: np.ndarray, grid_bits: int = 16) -> tuple[bytes, int]:
     q = _codes(levels, grid_bits)
     d = np.diff(q)
     nbits = level_bits(levels, grid_bits)
-    # recover the k that level_bits picked
-    k_best, best = 0, None
-    top = int(max(1, int(d.max()).bit_length())) if d.size else 0
-    for k in range(0, min(top + 1, 2 ** HEADER_K_BITS)):
-        b = int(np.sum(d >> k)) + d.size * (1 + k) if d.size else 0
-        if best is None or b < best:
-            k_best, best = k, b
+    k_best = _rice_choice(d)[0]
     bits: list[int] = []
     first = int(q[0]) & ((1 << grid_bits) - 1)
     bits += [(first >> (grid_bits - 1 - i)) & 1 for i in range(grid_bits)]

@@ -47,15 +47,48 @@ def model_codebook(method: str, n_levels: int, model: str, mean: float, std: flo
         shape = round(float(shape), 2)
     extra = tuple(sorted(_opts(method, opts).items()))
     th, lv, _ = unit_design(method, n_levels, model, shape, extra)
-    return d.Codebook(levels=lv * std + mean, thresholds=th * std + mean)
+    return pad_levels(d.Codebook(levels=lv * std + mean, thresholds=th * std + mean), n_levels)
 
 
 def histogram_codebook(method: str, n_levels: int, centers: np.ndarray, counts: np.ndarray,
                        init, opts: dict[str, Any]):
     d = _design()
+    if method in ("lloyd-max", "optimal"):
+        occupied = centers[counts > 0]
+        if 0 < occupied.size <= n_levels:
+            # no more distinct values than levels: a level on each is exact (zero
+            # error); the spare levels spread out beyond the extremes
+            return _exact_codebook(d, occupied, centers, n_levels)
     cb, _ = d.design(method, n_levels, centers=centers, weights=counts, init=init,
                      **_opts(method, opts))
-    return cb
+    return pad_levels(cb, n_levels)
+
+
+def pad_levels(cb, n_levels: int):
+    """Keep a stream's level count fixed when a design (e.g. ECSQ) drops cells:
+    the top level is repeated behind thresholds a hair above the last one, so
+    every decoded value is unchanged."""
+    L = len(cb.levels)
+    if L >= n_levels:
+        return cb
+    d = _design()
+    th, lv = np.asarray(cb.thresholds), np.asarray(cb.levels)
+    top = th[-1] if th.size else lv[-1]
+    eps = max(abs(top), 1.0) * 1e-12
+    extra = n_levels - L
+    th = np.concatenate([th, top + eps * np.arange(1, extra + 1)])
+    lv = np.concatenate([lv, np.repeat(lv[-1], extra)])
+    return d.Codebook(levels=lv, thresholds=th)
+
+
+def _exact_codebook(d, occupied: np.ndarray, centers: np.ndarray, n_levels: int):
+    spare = n_levels - occupied.size
+    width = (centers[-1] - centers[0]) / max(len(centers) - 1, 1) or 1e-6
+    below = spare // 2
+    above = spare - below
+    lv = np.concatenate([occupied[0] - width * np.arange(below, 0, -1), occupied,
+                         occupied[-1] + width * np.arange(1, above + 1)])
+    return d.Codebook(levels=lv)
 
 
 def fixed_codebook(method: str, n_levels: int, opts: dict[str, Any], samples: np.ndarray | None):
@@ -65,7 +98,7 @@ def fixed_codebook(method: str, n_levels: int, opts: dict[str, Any], samples: np
         return d.g711_codebook(G711[method])
     if samples is not None:
         cb, _ = d.design(method, n_levels, samples=samples, **_opts(method, opts))
-        return cb
+        return pad_levels(cb, n_levels)
     return model_codebook(method, n_levels, opts["model"], 0.0, opts["scale"], opts.get("shape"), opts)
 
 

@@ -242,8 +242,9 @@ class Encoder(Node):
         """Whether this snapshot should trigger a redesign (trigger rule)."""
         ch, t = snap.channel, snap.at_sample
         ref = self.ref[ch]
-        self.drift[ch] = (js_drift(ref.centers, ref.counts, snap.centers, snap.counts)
-                          if ref is not None else None)
+        if self.config.trigger == "drift" or self.live:  # otherwise nobody reads it
+            self.drift[ch] = (js_drift(ref.centers, ref.counts, snap.centers, snap.counts)
+                              if ref is not None else None)
         if t - self.last_design[ch] < self.min_interval:
             return False
         if self.config.trigger == "drift" and ref is not None:

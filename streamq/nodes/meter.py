@@ -31,7 +31,8 @@ class MeterConfig(NodeConfig):
                                                                   "(segmental SNR)")
     series: Duration = Field(Duration(100, "ms"), description="time-series row length "
                                                               "(rounded to whole frames)")
-    spectrum_size: int = Field(2048, ge=64, le=65_536, description="Welch segment length, samples")
+    spectrum_size: int = Field(2048, ge=64, le=65_536, description="Welch segment length, samples "
+                                                                   "(Hann window, no overlap)")
 
 
 def _seq_sum(acc: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -126,6 +127,14 @@ class ErrorMeter(Node):
             self.ent_n[ch] += float(n)
         self.ent_counts[ch] = None
 
+    def _count(self, ch: int, idx: np.ndarray) -> None:
+        n_lv = self.levels_seen or int(idx.max()) + 1
+        cnt = np.bincount(idx, minlength=n_lv)
+        if self.ent_counts[ch] is None:
+            self.ent_counts[ch] = cnt.astype(np.int64)
+        else:
+            self.ent_counts[ch][:len(cnt)] += cnt
+
     def _pick_start(self, u: CodebookUpdate) -> None:
         if u.channel != 0:
             return
@@ -194,14 +203,8 @@ class ErrorMeter(Node):
                 continue
             if idx is not None:
                 for ch in range(self.C):
-                    if self.version[ch] is None:
-                        continue
-                    n_lv = self.levels_seen or int(idx[a2:b, ch].max()) + 1
-                    cnt = np.bincount(idx[a2:b, ch], minlength=n_lv)
-                    if self.ent_counts[ch] is None:
-                        self.ent_counts[ch] = cnt.astype(np.int64)
-                    else:
-                        self.ent_counts[ch][:len(cnt)] += cnt
+                    if self.version[ch] is not None:
+                        self._count(ch, idx[a2:b, ch])
             if self.cur_pick is not None:
                 p = self.cur_pick
                 plo, phi = p["range"]
@@ -231,12 +234,14 @@ class ErrorMeter(Node):
         if K == 0:
             return
         frame_ver = buf[F - 1:K * F:F, 3 * C]   # version in force at each frame's last sample
-        blk = np.ascontiguousarray(buf[:K * F, :3 * C].reshape(K, F, 3 * C).transpose(2, 0, 1))
-        r, e, ov = blk[:C], blk[C:2 * C], blk[2 * C:]
-        sig = (r * r).sum(axis=-1).T          # (K, C), each frame summed the same way
-        noi = (e * e).sum(axis=-1).T
-        ovn = (e * e * ov).sum(axis=-1).T
-        ovc = ov.sum(axis=-1).T
+        body = buf[:K * F]
+        r, e, ov = body[:, :C], body[:, C:2 * C], body[:, 2 * C:3 * C]
+        e2 = e * e
+        # per-frame sums (K, C); reduceat adds each frame's rows in order, so a
+        # frame's sum does not depend on how the stream was cut into blocks
+        starts = np.arange(0, K * F, F)
+        sums = np.add.reduceat(np.concatenate([r * r, e2, e2 * ov, ov], axis=1), starts, axis=0)
+        sig, noi, ovn, ovc = sums[:, :C], sums[:, C:2 * C], sums[:, 2 * C:3 * C], sums[:, 3 * C:]
         self.sig = _seq_sum(self.sig, sig)
         self.noi = _seq_sum(self.noi, noi)
         self.ovn = _seq_sum(self.ovn, ovn)
@@ -249,19 +254,36 @@ class ErrorMeter(Node):
         snr = np.where(valid, np.clip(snr, lo, hi), 0.0)
         self.seg_sum = _seq_sum(self.seg_sum, snr)
         self.seg_n = self.seg_n + valid.sum(axis=0)
-        # series rows, channels pooled
-        for k in range(K):
-            w = self.win
-            w["sig"] += float(sig[k].sum())
-            w["noi"] += float(noi[k].sum())
-            w["ovc"] += float(ovc[k].sum())
-            w["seg"] += float(snr[k][valid[k]].sum())
-            w["segn"] += int(valid[k].sum())
-            w["frames"] += 1
-            w["version"] = int(frame_ver[k])
-            if w["frames"] == self.S:
-                self._row(F * self.S)
+        # series rows, channels pooled. A row's sums add its frames in order from
+        # zero, whichever blocks the frames came in (reduceat adds in order).
+        per = np.stack([sig.sum(axis=1), noi.sum(axis=1), ovc.sum(axis=1), snr.sum(axis=1),
+                        valid.sum(axis=1)], axis=1)
+        S, k = self.S, 0
+        while k < K and self.win["frames"] > 0:      # finish the open row frame by frame
+            self._win_add(per[k], frame_ver[k], 1)
+            k += 1
+            if self.win["frames"] == S:
+                self._row(F * S)
+        full = (K - k) // S
+        if full:
+            sums = np.add.reduceat(per[k:k + full * S], np.arange(0, full * S, S), axis=0)
+            for i in range(full):
+                self._win_add(sums[i], frame_ver[k + i * S + S - 1], S)
+                self._row(F * S)
+            k += full * S
+        if k < K:                                     # start the next row
+            self._win_add(np.add.reduceat(per[k:], [0], axis=0)[0], frame_ver[K - 1], K - k)
         self.frames_done += K
+
+    def _win_add(self, vec: np.ndarray, version: float, frames: int) -> None:
+        w = self.win
+        w["sig"] += float(vec[0])
+        w["noi"] += float(vec[1])
+        w["ovc"] += float(vec[2])
+        w["seg"] += float(vec[3])
+        w["segn"] += int(vec[4])
+        w["frames"] += frames
+        w["version"] = int(version)
 
     def _row(self, n: int) -> None:
         w = self.win
@@ -284,7 +306,7 @@ class ErrorMeter(Node):
         self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
 
     def _spectrum(self, new: np.ndarray) -> None:
-        N, hop = self.N, self.N // 2
+        N = hop = self.N   # Welch segments side by side (no overlap): half the FFTs
         buf = np.concatenate([self.spec_pend, new]) if self.spec_pend.shape[0] else new
         if buf.shape[0] < N:
             self.spec_pend = buf.copy()

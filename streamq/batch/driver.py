@@ -20,7 +20,7 @@ from pathlib import Path
 from typing import Any
 
 from streamq.batch.inputs import expand_inputs, folder_name
-from streamq.batch.summary import file_entry, write_summary
+from streamq.batch.summary import audio_duration, file_entry, write_summary
 from streamq.batch.work import is_done, one_line, setup_key
 from streamq.engine.graph import Graph, parse_graph
 from streamq.errors import StreamqError
@@ -335,7 +335,7 @@ def _print_summary(head: dict[str, Any], paths: list[Path], stopped: bool) -> No
     print(f"{head['graph']}: {counts.get('done', 0)} of {head['files_total']} files done "
           f"({head['reused']} from an earlier run), {failed} failed"
           + (f", {unfinished} not finished" if stopped else "")
-          + f"; {run['audio_seconds'] / 3600:.2f} h of audio run in {run['wall_seconds']:.1f} s "
+          + f"; {audio_duration(run['audio_seconds'])} of audio run in {run['wall_seconds']:.1f} s "
             f"({_speed(speed)} real time) on {head['engine']}")
     tot = json.loads(paths[1].read_text(encoding="utf-8"))["totals"]
     for mid, t in tot.items():

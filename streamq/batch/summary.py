@@ -186,6 +186,15 @@ def write_json(path: Path, head: dict[str, Any], entries: list[dict[str, Any]],
     _atomic_write(path, json.dumps(finite(data), indent=2) + "\n")
 
 
+def audio_duration(seconds: float) -> str:
+    """A length of audio in the unit that reads best: s, min or h."""
+    if seconds < 120:
+        return f"{seconds:.1f} s"
+    if seconds < 7200:
+        return f"{seconds / 60:.1f} min"
+    return f"{seconds / 3600:.2f} h"
+
+
 def _short(name: str, n: int = 34) -> str:
     return name if len(name) <= n else name[: n - 13] + "..." + name[-10:]
 
@@ -279,8 +288,10 @@ def write_summary(out_dir: Path, head: dict[str, Any],
         name = "summary.png" if len(tot) == 1 else f"summary-{re.sub(r'[^A-Za-z0-9_-]', '-', mid)}.png"
         hours = sum(e["audio_seconds"] or 0.0 for e in entries
                     if e["status"] == "done" and mid in e["meters"]) / 3600.0
+        failed = sum(1 for e in entries if e["status"] == "failed")
         title = (f"{head.get('graph', 'batch')}, meter '{mid}': {t['files']} files, "
-                 f"{hours:.2f} h of audio")
+                 f"{audio_duration(hours * 3600.0)} of audio"
+                 + (f" ({failed} more failed, not shown)" if failed else ""))
         if plot_snr(out_dir / name, mid, entries, t, title):
             plots[mid] = name
             paths.append(out_dir / name)

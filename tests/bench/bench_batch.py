@@ -78,13 +78,14 @@ def run_batch(graph: Path, inputs: Path, out: Path, *engine: str) -> dict:
     env["PYTHONPATH"] = str(REPO)
     cmd = [sys.executable, "-m", "streamq.cli", "batch", str(graph), "--inputs", str(inputs),
            "--out", str(out), "--quiet", *engine]
+    load = os.getloadavg()[0]
     r = subprocess.run(cmd, env=env, capture_output=True, text=True)
     if r.returncode != 0:
         sys.exit(f"batch failed ({' '.join(engine)}): exit {r.returncode}\n{r.stderr}")
     s = json.loads((out / "summary.json").read_text())
     audio, wall = s["this_run"]["audio_seconds"], s["this_run"]["wall_seconds"]
     return {"audio": audio, "wall": wall, "speed": audio / wall, "engine": s["engine"],
-            "totals": s["totals"]}
+            "totals": s["totals"], "load": load}
 
 
 def main() -> int:
@@ -106,16 +107,20 @@ def main() -> int:
                  else "simple (file-source, meter, file-sink)"))
         one = run_batch(graph, tmp / "archive", tmp / "w1", "--workers", "1")
         print(f"1 worker : {one['audio']:.0f} s of audio in {one['wall']:.2f} s "
-              f"({one['speed']:.1f}x real time)")
+              f"({one['speed']:.1f}x real time; load average before: {one['load']:.2f})")
         two = run_batch(graph, tmp / "archive", tmp / "w2", "--workers", "2")
         print(f"2 workers: {two['audio']:.0f} s of audio in {two['wall']:.2f} s "
-              f"({two['speed']:.1f}x real time)")
+              f"({two['speed']:.1f}x real time; load average before: {two['load']:.2f})")
         if one["totals"] != two["totals"]:
             print("MISMATCH: the two runs' totals differ")
             return 1
         ratio = two["speed"] / one["speed"]
         verdict = "PASS" if ratio >= TARGET else "MISS"
         print(f"throughput ratio 2 workers / 1 worker: {ratio:.2f} (target >= {TARGET}) {verdict}")
+        if os.cpu_count() and max(one["load"], two["load"]) > 0.5:
+            print(f"note: other processes were using the CPUs (load average up to "
+                  f"{max(one['load'], two['load']):.1f} on {os.cpu_count()} cores); the ratio "
+                  f"measures what the pool got, not what it can do on idle cores")
         if a.dask:
             d = run_batch(graph, tmp / "archive", tmp / "dask", "--cluster", "local:2")
             print(f"Dask local:2: {d['wall']:.2f} s ({d['speed']:.1f}x real time), "

@@ -1,0 +1,355 @@
+"""Harness for the live tests: a private JACK server with the dummy driver, and
+a second JACK client that plays a test signal into streamq and records what
+streamq plays back.
+
+Nothing here talks to sound hardware. ``jackd -d dummy`` runs a JACK graph
+paced by the system clock (in real time: a 20 s run takes 20 s), and streamq
+reaches it through PortAudio's JACK host API exactly as it would a studio's
+JACK server.
+
+PortAudio only lists the JACK host API if a server answers when PortAudio
+starts (``import sounddevice``), so streamq always runs in a child process
+started after the server, with ``JACK_DEFAULT_SERVER`` naming it.
+
+The helpers are plain classes (usable from the benchmark script too); the
+pytest fixture ``jack_server`` wraps :class:`JackServer`.
+"""
+
+from __future__ import annotations
+
+import itertools
+import os
+import re
+import shutil
+import signal
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+REPO = Path(__file__).resolve().parents[1]
+RATE = 48_000
+PERIOD = 128
+
+_counter = itertools.count(1)
+# PortAudio's JACK client is called "PortAudio" ("PortAudio-01" ... when several run);
+# its ports are in_0, in_1 ... and out_0, out_1 ...
+PA_INPUT = re.compile(r"^PortAudio[^:]*:in_(\d+)$")
+PA_OUTPUT = re.compile(r"^PortAudio[^:]*:out_(\d+)$")
+
+
+def portaudio_problem() -> str | None:
+    """Why PortAudio cannot be used here (None when it loads), checked in a child
+    process so that this process never initialises PortAudio itself."""
+    probe = subprocess.run([sys.executable, "-c", "import sounddevice"], capture_output=True,
+                           text=True, timeout=60, stdin=subprocess.DEVNULL)
+    if probe.returncode == 0:
+        return None
+    last = (probe.stderr.strip().splitlines() or ["import failed"])[-1]
+    return f"sounddevice cannot load PortAudio ({last}); apt-get install libportaudio2"
+
+
+def live_problem() -> str | None:
+    """Why the live tests cannot run here, or None."""
+    if shutil.which("jackd") is None:
+        return "jackd is not installed (apt-get install jackd2)"
+    for tool in ("jack_lsp",):
+        if shutil.which(tool) is None:
+            return f"{tool} is not installed (apt-get install jackd2)"
+    why = portaudio_problem()
+    if why:
+        return why
+    try:
+        import jack  # noqa: F401  (JACK-Client, the test player)
+    except ModuleNotFoundError:
+        return "the JACK-Client package is not installed (pip install -e '.[test]')"
+    except OSError as exc:
+        return f"JACK-Client cannot load libjack ({exc}); apt-get install jackd2"
+    return None
+
+
+class JackServer:
+    """A private ``jackd`` with the dummy driver, started and stopped by us.
+
+    Parameters
+    ----------
+    rate, period : sample rate and frames per JACK period.
+    channels : capture and playback ports of the dummy "system" device.
+    """
+
+    def __init__(self, rate: int = RATE, period: int = PERIOD, channels: int = 2):
+        self.name = f"streamq-test-{os.getpid()}-{next(_counter)}"
+        self.rate, self.period, self.channels = rate, period, channels
+        self.proc: subprocess.Popen | None = None
+        self.log_path = Path(tempfile.gettempdir()) / f"{self.name}.log"
+        self._log = None
+
+    # -- life cycle ------------------------------------------------------------
+    def start(self, timeout: float = 15.0) -> "JackServer":
+        env = dict(os.environ, JACK_NO_AUDIO_RESERVATION="1")
+        env.pop("JACK_DEFAULT_SERVER", None)
+        self._log = open(self.log_path, "wb")
+        self.proc = subprocess.Popen(
+            ["jackd", "-n", self.name, "-d", "dummy", "-r", str(self.rate), "-p", str(self.period),
+             "-C", str(self.channels), "-P", str(self.channels)],
+            stdout=self._log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, env=env)
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self.proc.poll() is not None:
+                raise RuntimeError(f"jackd exited with status {self.proc.returncode}:\n"
+                                   f"{self.log_tail()}")
+            if "system:capture_1" in self.ports():
+                return self
+            time.sleep(0.1)
+        self.stop()
+        raise RuntimeError(f"jackd '{self.name}' did not answer within {timeout} s:\n"
+                           f"{self.log_tail()}")
+
+    def stop(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(timeout=5)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(timeout=5)
+        self.proc = None
+        if self._log is not None:
+            self._log.close()
+            self._log = None
+
+    def __enter__(self) -> "JackServer":
+        return self.start()
+
+    def __exit__(self, *exc) -> None:
+        self.stop()
+
+    # -- helpers ---------------------------------------------------------------
+    def ports(self) -> list[str]:
+        """Port names as ``jack_lsp`` lists them (empty if the server does not answer)."""
+        try:
+            out = subprocess.run(["jack_lsp", "-s", self.name], capture_output=True, text=True,
+                                 timeout=5, stdin=subprocess.DEVNULL,
+                                 env=dict(os.environ, JACK_NO_START_SERVER="1"))
+        except subprocess.TimeoutExpired:
+            return []
+        return out.stdout.split() if out.returncode == 0 else []
+
+    def log_tail(self, lines: int = 20) -> str:
+        try:
+            text = self.log_path.read_text(errors="replace")
+        except OSError:
+            return ""
+        return "\n".join(text.splitlines()[-lines:])
+
+    def env(self, **extra: str) -> dict[str, str]:
+        """Environment for a streamq child process: this checkout on the path and
+        this server as the JACK default."""
+        env = dict(os.environ)
+        env["PYTHONPATH"] = str(REPO)
+        env["JACK_DEFAULT_SERVER"] = self.name
+        env["JACK_NO_START_SERVER"] = "1"
+        env["JACK_NO_AUDIO_RESERVATION"] = "1"
+        env.update(extra)
+        return env
+
+
+# -- the player ----------------------------------------------------------------------
+
+class Player:
+    """A JACK client that plays ``signal`` into streamq's input ports and records
+    streamq's output ports.
+
+    Parameters
+    ----------
+    server : JackServer
+    signal : float array (frames, channels), played once (then silence) or looped.
+    record : number of streamq output ports to record (0: none).
+    record_seconds : capacity of the recording.
+
+    Playing starts in the first JACK period after the connections are made
+    (:meth:`attach`); ``played`` counts the frames sent so far, ``recorded``
+    the frames recorded.
+    """
+
+    def __init__(self, server: JackServer, signal: np.ndarray | None, *, record: int = 0,
+                 record_seconds: float = 30.0, loop: bool = False, name: str = "streamq-player"):
+        import jack
+        self.server = server
+        self.signal = (np.zeros((0, 0), np.float32) if signal is None
+                       else np.ascontiguousarray(np.asarray(signal, dtype=np.float32)))
+        if self.signal.ndim == 1:
+            self.signal = self.signal[:, None]
+        self.loop = loop
+        self.client = jack.Client(name, servername=server.name, no_start_server=True)
+        self.name = self.client.name
+        self.outs = [self.client.outports.register(f"out_{i + 1}")
+                     for i in range(self.signal.shape[1])]
+        self.ins = [self.client.inports.register(f"in_{i + 1}") for i in range(record)]
+        self.rec = np.zeros((int(record_seconds * server.rate), record), np.float32)
+        self.playing = False
+        self.played = 0
+        self.recorded = 0
+        self.periods = 0
+        self.xruns = 0
+        self.client.set_process_callback(self._process)
+        self.client.set_xrun_callback(self._xrun)
+        self.client.activate()
+
+    def _xrun(self, delay):
+        self.xruns += 1
+
+    def _process(self, frames):
+        self.periods += 1
+        if not self.playing:
+            for p in self.outs:
+                p.get_array().fill(0.0)
+            return
+        sig = self.signal
+        n = sig.shape[0]
+        for ch, p in enumerate(self.outs):
+            buf = p.get_array()
+            a = self.played
+            if self.loop and n:
+                idx = (a + np.arange(frames)) % n
+                buf[:] = sig[idx, ch]
+            else:
+                k = max(0, min(frames, n - a))
+                buf[:k] = sig[a:a + k, ch]
+                buf[k:] = 0.0
+        self.played += frames
+        r = self.recorded
+        k = min(frames, self.rec.shape[0] - r)
+        if k > 0:
+            for ch, p in enumerate(self.ins):
+                self.rec[r:r + k, ch] = p.get_array()[:k]
+            self.recorded = r + k
+
+    def streamq_ports(self) -> tuple[list[str], list[str]]:
+        """streamq's (PortAudio's) input and output ports, in channel order."""
+        ins = sorted((p.name for p in self.client.get_ports(is_audio=True, is_input=True)
+                      if PA_INPUT.match(p.name)), key=lambda s: int(PA_INPUT.match(s).group(1)))
+        outs = sorted((p.name for p in self.client.get_ports(is_audio=True, is_output=True)
+                       if PA_OUTPUT.match(p.name)), key=lambda s: int(PA_OUTPUT.match(s).group(1)))
+        return ins, outs
+
+    def attach(self, timeout: float = 60.0, want_inputs: int | None = None,
+               want_outputs: int = 0, alive=None) -> tuple[list[str], list[str]]:
+        """Wait for streamq's ports, connect them, and start playing.
+
+        streamq's inputs are disconnected from the dummy capture ports and fed
+        from ``out_N``; its outputs (up to ``record``) go to ``in_N``.
+        ``alive`` is polled (e.g. ``proc.poll() is None``) to give up early.
+        """
+        want_inputs = self.signal.shape[1] if want_inputs is None else want_inputs
+        deadline = time.monotonic() + timeout
+        while True:
+            ins, outs = self.streamq_ports()
+            if len(ins) >= want_inputs and len(outs) >= want_outputs and (ins or outs):
+                break
+            if alive is not None and not alive():
+                raise RuntimeError("streamq ended before its JACK ports appeared")
+            if time.monotonic() > deadline:
+                raise RuntimeError(f"streamq's JACK ports did not appear within {timeout} s "
+                                   f"(ports: {self.server.ports()})")
+            time.sleep(0.01)
+        for dst in ins:
+            for src in self.client.get_all_connections(dst):
+                self.client.disconnect(src, dst)
+        for i, dst in enumerate(ins[:len(self.outs)]):
+            self.client.connect(self.outs[i], dst)
+        for i, src in enumerate(outs[:len(self.ins)]):
+            self.client.connect(src, self.ins[i])
+        self.playing = True
+        return ins, outs
+
+    def recording(self) -> np.ndarray:
+        """What was recorded so far, (frames, channels) float32."""
+        return self.rec[:self.recorded].copy()
+
+    def close(self) -> None:
+        try:
+            self.client.deactivate()
+        except Exception:
+            pass
+        try:
+            self.client.close()
+        except Exception:
+            pass
+
+
+# -- streamq in a child process ------------------------------------------------------
+
+def streamq_cmd(*args) -> list[str]:
+    return [sys.executable, "-m", "streamq.cli", *map(str, args)]
+
+
+def run_streamq(server: JackServer, *args, timeout: float = 120, **kw) -> subprocess.CompletedProcess:
+    """Run ``streamq ARGS`` against ``server``; capture text output."""
+    return subprocess.run(streamq_cmd(*args), env=server.env(), capture_output=True, text=True,
+                          timeout=timeout, stdin=subprocess.DEVNULL, **kw)
+
+
+def start_streamq(server: JackServer, *args, cwd: Path | None = None) -> subprocess.Popen:
+    """Start ``streamq ARGS`` against ``server`` without waiting (stdout/stderr piped)."""
+    return subprocess.Popen(streamq_cmd(*args), env=server.env(), cwd=cwd, text=True,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            stdin=subprocess.DEVNULL)
+
+
+def play_through(server: JackServer, audio: np.ndarray, args: list, *, record: int = 0,
+                 timeout: float = 120, loop: bool = False, stop_after: float | None = None,
+                 stop_signal: int = signal.SIGINT):
+    """Start streamq, feed it ``audio`` from the player once its ports appear,
+    and wait for it to end (or send ``stop_signal`` ``stop_after`` seconds after
+    attaching). Returns (CompletedProcess-like result, recording, player stats)."""
+    proc = start_streamq(server, *args)
+    player = Player(server, audio, record=record, loop=loop,
+                    record_seconds=max(5.0, len(audio) / server.rate + 10.0))
+    try:
+        try:
+            player.attach(timeout=60, want_outputs=record, alive=lambda: proc.poll() is None)
+        except RuntimeError:
+            pass  # streamq failed early: its own output says why
+        if stop_after is not None and proc.poll() is None:
+            time.sleep(stop_after)
+            if proc.poll() is None:
+                proc.send_signal(stop_signal)
+        try:
+            out, err = proc.communicate(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            out, err = proc.communicate()
+            raise AssertionError(f"streamq did not stop within {timeout} s:\n{err[-3000:]}")
+        rec = player.recording()
+        stats = {"played": player.played, "recorded": player.recorded, "xruns": player.xruns,
+                 "periods": player.periods}
+    finally:
+        player.close()
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    return subprocess.CompletedProcess(proc.args, proc.returncode, out, err), rec, stats
+
+
+@pytest.fixture(scope="session")
+def jack_server():
+    """A private JACK server (dummy driver, 48 kHz, 128-frame periods) for the session;
+    skips when jackd, PortAudio or JACK-Client is missing."""
+    why = live_problem()
+    if why:
+        pytest.skip(why)
+    server = JackServer()
+    try:
+        server.start()
+    except RuntimeError as exc:
+        pytest.fail(f"could not start a JACK server: {exc}")
+    try:
+        yield server
+    finally:
+        server.stop()

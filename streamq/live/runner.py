@@ -28,31 +28,20 @@ STATUS_FLAGS = ("input_underflow", "input_overflow", "output_underflow", "output
 TIMES = 1 << 16  # callback work times kept (a ring: constant memory)
 
 
-def _sounddevice():
-    try:
-        from streamq.live.devices import import_sounddevice
-    except ImportError:  # pragma: no cover - devices module always ships
-        import sounddevice
-        return sounddevice
-    return import_sounddevice()
-
-
-def resolve_device(sd, device, kind: str, node_id: str):
-    """A device index for a name (or part of one) or an index; None = default."""
-    if device is None:
+def _device(sd, node, direction: str, channels: int):
+    """The device index for a live node (None: PortAudio's default, which must exist)."""
+    from streamq.live.devices import resolve_device
+    idx = resolve_device(node.config.device, direction, channels, sd=sd,
+                         where=f"node '{node.id}', field 'device'")
+    if idx is None:
         try:
-            idx = sd.default.device[0 if kind == "input" else 1]
+            default = sd.default.device[0 if direction == "input" else 1]
         except Exception:
-            idx = -1
-        if idx is None or idx < 0:
-            raise StreamqError(f"node '{node_id}': no default {kind} device; name one with field "
-                               f"'device' (see `streamq devices`)")
-        return idx
-    try:
-        return sd.query_devices(device, kind)["index"]
-    except ValueError as exc:
-        raise StreamqError(f"node '{node_id}', field 'device': {str(exc).splitlines()[0]} "
-                           f"(see `streamq devices`)") from None
+            default = -1
+        if default is None or default < 0:
+            raise StreamqError(f"node '{node.id}': no default {direction} device; name one with "
+                               f"field 'device' (see 'streamq devices')")
+    return idx
 
 
 class LiveRun:
@@ -158,7 +147,8 @@ def _gather(run: LiveRun) -> dict:
 
 def run_live(graph: Graph, out_dir: Path, args) -> int:
     """`streamq run` for graphs with live nodes."""
-    sd = _sounddevice()
+    from streamq.live.devices import import_sounddevice
+    sd = import_sounddevice()
     block = int(getattr(args, "block", None) or graph.header.block)
     seconds = getattr(args, "seconds", None)
     executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamq-design")
@@ -170,17 +160,17 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         kwargs = dict(samplerate=rate, blocksize=block, dtype="float32", callback=run.callback)
         try:
             if run.inp and run.out:
-                i = resolve_device(sd, run.inp[0].config.device, "input", run.inp[0].id)
-                o = resolve_device(sd, run.out[0].config.device, "output", run.out[0].id)
+                i = _device(sd, run.inp[0], "input", run.inp[0].spec.channels)
+                o = _device(sd, run.out[0], "output", run.out[0].C)
                 stream = sd.Stream(device=(i, o), channels=(run.inp[0].spec.channels,
                                                             run.out[0].C), **kwargs)
             elif run.inp:
-                i = resolve_device(sd, run.inp[0].config.device, "input", run.inp[0].id)
+                i = _device(sd, run.inp[0], "input", run.inp[0].spec.channels)
                 stream = sd.InputStream(device=i, channels=run.inp[0].spec.channels, **kwargs)
             else:
                 if not run.out:
                     raise StreamqError("a live run needs a live-input or a live-output node")
-                o = resolve_device(sd, run.out[0].config.device, "output", run.out[0].id)
+                o = _device(sd, run.out[0], "output", run.out[0].C)
                 stream = sd.OutputStream(device=o, channels=run.out[0].C, **kwargs)
         except sd.PortAudioError as exc:
             raise StreamqError(f"cannot open the audio stream at {rate} Hz, block {block}: "

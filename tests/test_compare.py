@@ -209,6 +209,7 @@ def test_command_line_table(tmp_path):
     (["--bits", "4", "--methods", ","], ["--methods"]),
     (["--bits", "4", "--entropy", "-1"], ["--entropy"]),
     (["--bits", "4", "--loading", "0"], ["--loading"]),
+    (["--bits", "4", "--hop", "soon"], ["--hop", "soon"]),
 ])
 def test_bad_options_exit_2_with_one_line(tmp_path, args, words):
     proc = _cli("compare", AUDIO, *args, cwd=tmp_path)

@@ -194,6 +194,12 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str = METHODS, *,
         raise StreamqError("--entropy: needed for ecsq at this word length")
     if not loading > 0:
         raise StreamqError(f"--loading: must be above 0, got {loading}")
+    from streamq.engine.node import Duration
+    for name, value in (("--window", window), ("--hop", hop)):
+        try:
+            Duration.parse(value)
+        except ValueError as exc:
+            raise StreamqError(f"{name}: {exc}") from None
     rms, info = file_rms(audio)
     if rms <= 0:
         raise StreamqError(f"{audio}: the recording is silent (RMS 0); nothing to compare")

@@ -17,7 +17,7 @@ import numpy as np
 from pydantic import Field
 
 from streamq.engine.blocks import CodebookUpdate, Packet, StreamSpec
-from streamq.engine.delay import DelayLine
+from streamq.engine.delay import DelayLine, FrameCollector
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
 
@@ -90,14 +90,14 @@ class ErrorMeter(Node):
         self.sig, self.noi, self.ovn, self.ovc = z.copy(), z.copy(), z.copy(), z.copy()
         self.seg_sum, self.seg_n = z.copy(), z.copy()
         self.peak = 0.0
-        self.pend = np.zeros((0, 3 * C + 1))
+        self.frames_in = FrameCollector(self.F, 3 * C + 1)
         self.frames_done = 0
         # series
         self.rows: list[dict] = []
         self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
         self.win_events: dict[int, list[int]] = {}
         # spectra
-        self.spec_pend = np.zeros((0, 2 * C))
+        self.spec_in = FrameCollector(self.N, 2 * C)
         self.spec_win = np.hanning(self.N + 2)[1:-1]
         self.spec_acc = np.zeros((2, self.N // 2 + 1))
         self.spec_frames = 0
@@ -228,11 +228,10 @@ class ErrorMeter(Node):
 
     def _frames(self, new: np.ndarray) -> None:
         C, F = self.C, self.F
-        buf = np.concatenate([self.pend, new]) if self.pend.shape[0] else new
-        K = buf.shape[0] // F
-        self.pend = buf[K * F:].copy()
-        if K == 0:
+        buf = self.frames_in.push(new)
+        if buf is None:
             return
+        K = buf.shape[0] // F
         frame_ver = buf[F - 1:K * F:F, 3 * C]   # version in force at each frame's last sample
         body = buf[:K * F]
         r, e, ov = body[:, :C], body[:, C:2 * C], body[:, 2 * C:3 * C]
@@ -306,27 +305,26 @@ class ErrorMeter(Node):
         self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
 
     def _spectrum(self, new: np.ndarray) -> None:
-        N = hop = self.N   # Welch segments side by side (no overlap): half the FFTs
-        buf = np.concatenate([self.spec_pend, new]) if self.spec_pend.shape[0] else new
-        if buf.shape[0] < N:
-            self.spec_pend = buf.copy()
+        N = self.N   # Welch segments side by side (no overlap)
+        buf = self.spec_in.push(new)
+        if buf is None:
             return
-        K = (buf.shape[0] - N) // hop + 1
-        view = np.lib.stride_tricks.sliding_window_view(buf, N, axis=0)[::hop][:K]  # (K, 2C, N)
+        K = buf.shape[0] // N
+        view = buf.reshape(K, N, 2 * self.C).transpose(0, 2, 1)  # (K, 2C, N)
         spec = np.abs(np.fft.rfft(view * self.spec_win, axis=-1)) ** 2
         C = self.C
         both = np.stack([spec[:, :C].sum(axis=1), spec[:, C:].sum(axis=1)], axis=1)  # (K, 2, f)
         self.spec_acc = _seq_sum(self.spec_acc, both)
         self.spec_frames += K
-        self.spec_pend = buf[K * hop:].copy()
 
     # -- the end -----------------------------------------------------------------
     def finish(self) -> None:
         # the last partial frame counts towards the totals, not towards segmental SNR
-        if self.pend.shape[0]:
+        pend = self.frames_in.pending
+        if pend.shape[0]:
             C = self.C
-            r, e, ov = self.pend[:, :C], self.pend[:, C:2 * C], self.pend[:, 2 * C:3 * C]
-            self.win["version"] = int(self.pend[-1, 3 * C])
+            r, e, ov = pend[:, :C], pend[:, C:2 * C], pend[:, 2 * C:3 * C]
+            self.win["version"] = int(pend[-1, 3 * C])
             self.sig = self.sig + (r * r).sum(axis=0)
             self.noi = self.noi + (e * e).sum(axis=0)
             self.ovn = self.ovn + (e * e * ov).sum(axis=0)
@@ -335,13 +333,13 @@ class ErrorMeter(Node):
             w["sig"] += float((r * r).sum())
             w["noi"] += float((e * e).sum())
             w["ovc"] += float(ov.sum())
-            self.pend = self.pend[:0]
+            self.frames_in.clear()
             self._row(r.shape[0] + w["frames"] * self.F)
         elif self.win["frames"]:
             self._row(self.win["frames"] * self.F)
 
     def close(self, complete: bool) -> None:
-        if not complete and (self.pend.shape[0] or self.win["frames"]):
+        if not complete and (self.frames_in.fill or self.win["frames"]):
             self.finish()
         for ch in range(self.C):
             self._flush_entropy(ch)

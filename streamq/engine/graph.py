@@ -95,6 +95,18 @@ def _set_override(raw: dict[str, Any], item: str, label: str) -> str | None:
     return None
 
 
+def _nul_fields(value: Any, loc: str = "") -> list[str]:
+    """Locations of strings holding a NUL character (TOML allows "\\u0000"; the
+    operating system would cut a path there and use another file)."""
+    if isinstance(value, str):
+        return [loc] if "\x00" in value else []
+    if isinstance(value, dict):
+        return [f for k, v in value.items() for f in _nul_fields(v, f"{loc}.{k}" if loc else str(k))]
+    if isinstance(value, list):
+        return [f for i, v in enumerate(value) for f in _nul_fields(v, f"{loc}[{i}]")]
+    return []
+
+
 def _config_adapter(kinds: dict[str, type[Node]]) -> TypeAdapter:
     models = tuple(cls.Config for cls in kinds.values())
     if len(models) == 1:
@@ -141,6 +153,9 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
     header = GraphHeader()
     if not isinstance(header_raw, dict):
         problems.append(f"{label}: [graph] must be a table")
+    elif _nul_fields(header_raw):
+        problems.extend(f"{label}: [graph], field '{f}': contains a NUL character (\\u0000)"
+                        for f in _nul_fields(header_raw))
     else:
         try:
             header = GraphHeader.model_validate(header_raw)
@@ -164,6 +179,10 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
             continue
         if not isinstance(table, dict):
             problems.append(f"{where}: must be a table of fields")
+            continue
+        nul = _nul_fields(table)
+        if nul:
+            problems.extend(f"{where}, field '{f}': contains a NUL character (\\u0000)" for f in nul)
             continue
         use = table.get("use")
         if use is None:

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import re
 import tomllib
+import types
+import typing
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any, Union
@@ -107,6 +109,57 @@ def _nul_fields(value: Any, loc: str = "") -> list[str]:
     return []
 
 
+_SCALARS = {int: ("an integer", (int,)), float: ("a number", (int, float)),
+            bool: ("true or false", (bool,)), str: ("text", (str,))}
+
+
+def _scalar_types(annotation: Any) -> tuple[list[str], tuple[type, ...]] | None:
+    """What a plain scalar field takes, as (descriptions, TOML value types);
+    None when the field is not made of plain scalars (durations, lists...)."""
+    if annotation is type(None):
+        return [], ()
+    if typing.get_origin(annotation) is typing.Literal:
+        kinds = {type(a) for a in typing.get_args(annotation)}
+        return [_SCALARS[k][0] for k in kinds if k in _SCALARS], tuple(kinds)
+    if typing.get_origin(annotation) in (Union, types.UnionType):
+        names: list[str] = []
+        allowed: tuple[type, ...] = ()
+        for arg in typing.get_args(annotation):
+            sub = _scalar_types(arg)
+            if sub is None:
+                return None
+            names += sub[0]
+            allowed += sub[1]
+        return names, allowed
+    if annotation in _SCALARS:
+        return [_SCALARS[annotation][0]], _SCALARS[annotation][1]
+    return None
+
+
+def _wrong_types(config: type[BaseModel], table: dict[str, Any]) -> dict[str, str]:
+    """Field -> problem, for values of the wrong TOML type that pydantic would
+    quietly convert (``bits = true`` into 1, ``seconds = "5"`` into 5.0)."""
+    out = {}
+    for name, f in config.model_fields.items():
+        if name not in table or name == "use":
+            continue
+        sub = _scalar_types(f.annotation)
+        value = table[name]
+        if sub is None or not sub[1]:
+            continue
+        names, allowed = sub
+        if isinstance(value, bool) and bool not in allowed or not isinstance(value, allowed):
+            if isinstance(value, bool):
+                got = str(value).lower()
+            else:
+                shown = repr(value)
+                shown = shown if len(shown) <= 60 else shown[:57] + "..."
+                got = {int: "an integer", float: "a number", str: "text", list: "a list",
+                       dict: "a table"}.get(type(value), type(value).__name__) + f" ({shown})"
+            out[name] = f"expected {' or '.join(dict.fromkeys(names))}, got {got}"
+    return out
+
+
 def _config_adapter(kinds: dict[str, type[Node]]) -> TypeAdapter:
     models = tuple(cls.Config for cls in kinds.values())
     if len(models) == 1:
@@ -156,6 +209,9 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
     elif _nul_fields(header_raw):
         problems.extend(f"{label}: [graph], field '{f}': contains a NUL character (\\u0000)"
                         for f in _nul_fields(header_raw))
+    elif _wrong_types(GraphHeader, header_raw):
+        problems.extend(f"{label}: [graph], field '{f}': {msg}"
+                        for f, msg in _wrong_types(GraphHeader, header_raw).items())
     else:
         try:
             header = GraphHeader.model_validate(header_raw)
@@ -192,13 +248,19 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
             problems.append(f"{where}, field 'use': unknown node kind {use!r}; known kinds: "
                             f"{', '.join(kinds)}")
             continue
+        wrong = _wrong_types(kinds[use].Config, table)
+        problems.extend(f"{where}, field '{fld}': {msg}" for fld, msg in wrong.items())
         try:
-            configs[node_id] = adapter.validate_python(table)
+            config = adapter.validate_python(table)
+            if not wrong:
+                configs[node_id] = config
         except ValidationError as exc:
             for err in exc.errors():
                 loc = [str(p) for p in err["loc"]]
                 if loc and loc[0] == use:  # discriminator tag in the location
                     loc = loc[1:]
+                if loc and loc[0] in wrong:  # said above
+                    continue
                 fld = ".".join(loc) or "?"
                 msg = err["msg"]
                 if err["type"] == "extra_forbidden":

@@ -164,6 +164,8 @@ class Encoder(Node):
             except Exception as exc:
                 raise self.fail("method", f"cannot design the first codebook: {exc}") from None
             first, bits0 = coding.finish_levels(first, c.grid_bits, self.standard)
+            if self.standard:  # G.711 mu-law decodes its two zero codes alike: 255 levels
+                self.L = coding_info["levels"] = first.size
             self.current = [first] * self.C
         # the first codebook of every channel is in force from sample 0
         for ch in range(self.C):

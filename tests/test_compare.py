@@ -233,3 +233,26 @@ def test_bad_files(tmp_path):
     text.write_text("not audio")
     with pytest.raises(StreamqError, match="not a readable audio file"):
         compare(text, 4, "uniform", handle_signals=False)
+
+
+def test_g711_tables_match_audioop(tmp_path):
+    """At 8 bits the G.711 methods are the standard tables: the table's SNR is that of
+    a G.711 round trip made by Python's audioop (lin2ulaw/ulaw2lin, lin2alaw/alaw2lin)."""
+    import warnings
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)
+        try:
+            import audioop
+        except ImportError:  # Python 3.13+: the audioop-lts package
+            audioop = pytest.importorskip("audioop")
+    x, _ = sf.read(str(AUDIO), dtype="int16", always_2d=True)
+    raw = x[:, 0].tobytes()
+    ref = x[:, 0] / 32768.0
+    res = by_method(compare(AUDIO, 8, "g711-mu,g711-a,mu-law", handle_signals=False))
+    for method, enc, dec in (("g711-mu", audioop.lin2ulaw, audioop.ulaw2lin),
+                             ("g711-a", audioop.lin2alaw, audioop.alaw2lin)):
+        y = np.frombuffer(dec(enc(raw, 2), 2), dtype=np.int16) / 32768.0
+        snr = 10 * np.log10(np.sum(ref ** 2) / np.sum((y - ref) ** 2))
+        assert res[method]["snr_db"] == pytest.approx(snr, abs=1e-9), method
+        assert res[method]["bits_per_sample"] == 8.0  # standard tables: no side information
+        assert res[method]["codebook_updates"] == 1

@@ -4,6 +4,7 @@ that never leaves half a file under the final name."""
 from __future__ import annotations
 
 import os
+import stat
 from pathlib import Path
 from typing import Callable
 
@@ -24,9 +25,13 @@ def open_for_reading(path: Path, fail: Callable[[str], Exception]):
     """Open an audio file with soundfile; errors become one-line messages."""
     import soundfile as sf
     path = Path(path)
-    if not path.exists():
-        raise fail(f"{path}: no such file")
-    if path.is_dir():
+    try:
+        st = path.stat()
+    except FileNotFoundError:
+        raise fail(f"{path}: no such file") from None
+    except OSError as exc:  # name too long, a loop of links, a file used as a folder...
+        raise fail(f"{path}: cannot open ({exc.strerror or exc})") from None
+    if stat.S_ISDIR(st.st_mode):
         raise fail(f"{path}: is a folder, not an audio file")
     try:
         f = sf.SoundFile(str(path))

@@ -4,6 +4,7 @@ that never leaves half a file under the final name."""
 from __future__ import annotations
 
 import os
+import re
 import stat
 from pathlib import Path
 from typing import Callable
@@ -44,7 +45,32 @@ def open_for_reading(path: Path, fail: Callable[[str], Exception]):
     if info.frames <= 0:
         f.close()
         raise fail(f"{path}: the file holds no audio frames")
+    cut = _truncated(f)
+    if cut:
+        f.close()
+        raise fail(f"{path}: the file is truncated: its header declares {cut[0]} bytes of audio "
+                   f"but only {cut[1]} are there (the audio ends at sample {info.frames})")
     return f, info
+
+
+_CHUNK_SIZE_LOG = re.compile(r"^\s*(?:data|SSND)\s*:\s*(\d+)\s*\(should be (\d+)\)", re.M)
+
+
+def _truncated(f) -> tuple[int, int] | None:
+    """(declared, present) audio bytes when the header promises more than the file
+    holds. libsndfile then quietly reads what is there, so say it instead. Sizes
+    of 2 GiB and more are left alone: writers that do not know the length in
+    advance put such values in the header."""
+    try:
+        log = f.extra_info
+    except Exception:
+        return None
+    m = _CHUNK_SIZE_LOG.search(log or "")
+    if m:
+        declared, present = int(m.group(1)), int(m.group(2))
+        if present < declared < 0x7FF00000:
+            return declared, present
+    return None
 
 
 class _Info:

@@ -104,10 +104,19 @@ class RunContext:
 
     def resolve_input(self, path: str | Path) -> Path:
         """Relative input paths are taken relative to the graph file's folder."""
-        p = Path(path).expanduser()
-        if p.is_absolute() or self.graph_file is None:
-            return p
-        return self.graph_file.parent / p
+        return input_path(path, self.graph_file)
+
+
+def input_path(path: str | Path, graph_file: Path | None) -> Path:
+    """An input path as given, with ``~`` expanded, relative to the graph file's folder."""
+    p = Path(path)
+    try:
+        p = p.expanduser()
+    except RuntimeError:  # "~name" of no known user: keep the name as it is
+        pass
+    if p.is_absolute() or graph_file is None:
+        return p
+    return graph_file.parent / p
 
 
 class Node:

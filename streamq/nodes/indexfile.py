@@ -16,7 +16,7 @@ from pydantic import Field
 from streamq.engine.background import BackgroundWriter
 from streamq.engine.blocks import IndexBlock, Packet, StreamSpec
 from streamq.engine.indexio import IndexReader, IndexWriter
-from streamq.engine.node import Node, NodeConfig, RunContext, SourceNode
+from streamq.engine.node import Node, NodeConfig, RunContext, SourceNode, input_path
 from streamq.engine.registry import register
 from streamq.errors import StreamqError
 
@@ -130,9 +130,7 @@ class IndexSource(SourceNode):
         self.path: Path | None = None
 
     def natural_rate(self, graph) -> int | None:
-        p = Path(self.config.path).expanduser()
-        if not p.is_absolute() and graph.source is not None:
-            p = graph.source.parent / p
+        p = input_path(self.config.path, graph.source)
         try:
             with IndexReader(p) as r:
                 return r.spec.rate

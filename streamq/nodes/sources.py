@@ -9,7 +9,7 @@ import numpy as np
 from pydantic import Field, field_validator
 
 from streamq.engine.blocks import Packet, SignalBlock, StreamSpec
-from streamq.engine.node import NodeConfig, RunContext, SourceNode
+from streamq.engine.node import NodeConfig, RunContext, SourceNode, input_path
 from streamq.engine.registry import register
 from streamq.nodes import scenes
 from streamq.engine.audiofile import open_for_reading, subtype_bits
@@ -51,9 +51,7 @@ class FileSource(SourceNode):
 
     def natural_rate(self, graph) -> int | None:
         import soundfile as sf
-        p = Path(self.config.path).expanduser()
-        if not p.is_absolute() and graph.source is not None:
-            p = graph.source.parent / p
+        p = input_path(self.config.path, graph.source)
         try:
             return sf.info(str(p)).samplerate
         except Exception:

@@ -337,6 +337,35 @@ def play_through(server: JackServer, audio: np.ndarray, args: list, *, record: i
     return subprocess.CompletedProcess(proc.args, proc.returncode, out, err), rec, stats
 
 
+CONTROL = """
+import sys, time, sounddevice as sd
+seen = [0, 0]
+def callback(indata, outdata, frames, when, status):
+    seen[0] += 1
+    if status.input_overflow or status.output_underflow or status.input_underflow \\
+            or status.output_overflow:
+        seen[1] += 1
+    outdata[:] = indata
+with sd.Stream(samplerate=int(sys.argv[2]), blocksize=int(sys.argv[3]), channels=2,
+               dtype="float32", callback=callback):
+    time.sleep(float(sys.argv[1]))
+print(seen[0], seen[1])
+"""
+
+
+def control_dropouts(server: JackServer, seconds: float, block: int = PERIOD) -> tuple[int, int]:
+    """A do-nothing PortAudio client (copies input to output) on ``server`` for
+    ``seconds``: (callbacks, callbacks flagged with an under/overrun). Tells
+    whether the machine itself can hold real time just now."""
+    res = subprocess.run([sys.executable, "-c", CONTROL, str(seconds), str(server.rate), str(block)],
+                         env=server.env(), capture_output=True, text=True, timeout=seconds + 60,
+                         stdin=subprocess.DEVNULL)
+    if res.returncode != 0:
+        raise RuntimeError(f"control client failed: {res.stderr[-1000:]}")
+    calls, flagged = map(int, res.stdout.split())
+    return calls, flagged
+
+
 @pytest.fixture(scope="session")
 def jack_server():
     """A private JACK server (dummy driver, 48 kHz, 128-frame periods) for the session;

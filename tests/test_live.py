@@ -119,6 +119,42 @@ device = "system"
 """
 
 
+# replay of a live recording: its input through an encoder that applies the recorded
+# codebook announcements (codebooks_from) instead of designing
+REPLAY = """
+[graph]
+name = "replay-exact"
+sample_rate = 48000
+
+[nodes.mic]
+use = "file-source"
+path = "{input}"
+
+[nodes.enc]
+use = "encoder"
+input = "mic"
+method = "lloyd-max"
+bits = 4
+adapt = "trailing"
+codebooks_from = "{codes}"
+
+[nodes.dec]
+use = "decoder"
+input = "enc"
+
+[nodes.noise]
+use = "error-meter"
+reference = "mic"
+input = "dec"
+
+[nodes.keep]
+use = "file-sink"
+input = "dec"
+path = "decoded.wav"
+subtype = "DOUBLE"
+"""
+
+
 def write(path: Path, text: str) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(textwrap.dedent(text).lstrip())
@@ -187,38 +223,7 @@ def test_replay_with_recorded_codebooks_is_bit_exact(adaptive_run):
     sample for sample, and the meter's figures are the same numbers."""
     out = adaptive_run["out"]
     live = adaptive_run["report"]
-    text = f"""
-[graph]
-name = "replay-exact"
-sample_rate = 48000
-
-[nodes.mic]
-use = "file-source"
-path = "{out / 'input.wav'}"
-
-[nodes.enc]
-use = "encoder"
-input = "mic"
-method = "lloyd-max"
-bits = 4
-adapt = "trailing"
-codebooks_from = "{out / 'codes.sqi'}"
-
-[nodes.dec]
-use = "decoder"
-input = "enc"
-
-[nodes.noise]
-use = "error-meter"
-reference = "mic"
-input = "dec"
-
-[nodes.keep]
-use = "file-sink"
-input = "dec"
-path = "decoded.wav"
-subtype = "DOUBLE"
-"""
+    text = REPLAY.format(input=out / "input.wav", codes=out / "codes.sqi")
     replay_dir = adaptive_run["base"] / "replay-b"
     offline = run_toml(text, replay_dir)
     live_dec, _ = sf.read(out / "decoded.wav", dtype="float64", always_2d=True)
@@ -322,6 +327,13 @@ def test_ctrl_c_stops_cleanly_and_writes_the_report(jack_server, tmp_path):
         info = sf.info(str(out / name))
         assert info.frames == n, (name, info.frames, n)
     assert report["outputs"]["codes"]["frames"] == n
+    # the interrupted recording still replays bit-exactly
+    replay = run_toml(REPLAY.format(input=out / "input.wav", codes=out / "codes.sqi"),
+                      tmp_path / "replay")
+    assert replay["samples"] == n
+    live_dec, _ = sf.read(out / "decoded.wav", dtype="float64", always_2d=True)
+    replay_dec, _ = sf.read(tmp_path / "replay" / "decoded.wav", dtype="float64", always_2d=True)
+    assert np.array_equal(live_dec, replay_dec)
     # the live meter drew on the terminal, redrawing in place (cursor up)
     assert "audio load" in text and "SNR" in text, text[-2000:]
     assert "\x1b[1A" in text

@@ -13,6 +13,25 @@ from streamq.errors import StreamqError
 EXIT_OK, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 2, 130
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line error like every other streamq error (argparse
+    prints the whole usage block first); still exit status 2."""
+
+    def error(self, message: str):
+        message = " ".join(message.split())
+        self.exit(EXIT_BAD_INPUT, f"streamq: {message} (see '{self.prog} --help')\n")
+
+
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number of seconds: {text!r}") from None
+    if not (value > 0 and value != float("inf")):
+        raise argparse.ArgumentTypeError(f"give a positive, finite number of seconds, not {text!r}")
+    return value
+
+
 def _add_graph_args(p: argparse.ArgumentParser) -> None:
     p.add_argument("graph", help="graph file (TOML)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="NODE.FIELD=VALUE",
@@ -57,6 +76,10 @@ def cmd_nodes(args) -> int:
     from pydantic_core import PydanticUndefined
     from streamq.engine.registry import registry
     kinds = registry.kinds()
+    unknown = [k for k in args.kind if k not in kinds]
+    if unknown:
+        raise StreamqError(f"unknown node kind {', '.join(map(repr, unknown))}; known kinds: "
+                           f"{', '.join(kinds)}")
     for kind, cls in kinds.items():
         if args.kind and kind not in args.kind:
             continue
@@ -79,7 +102,7 @@ def cmd_nodes(args) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="streamq", description="Design, run and measure audio quantizers on live feeds and recordings.")
     parser.add_argument("--version", action="version", version=f"streamq {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -89,7 +112,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, help="output folder (default streamq-out/<graph name>/)")
     p.add_argument("--block", type=int, help="frames per step (offline default 65536; "
                                             "live default: the graph's block)")
-    p.add_argument("--seconds", type=float, help="live runs: stop after this many seconds")
+    p.add_argument("--seconds", type=_seconds, help="live runs: stop after this many seconds")
     p.add_argument("--quiet", action="store_true", help="no progress bar or live meter")
     p.set_defaults(func=cmd_run)
 

@@ -57,7 +57,8 @@ def spread_levels(values, count: int) -> np.ndarray:
         v = np.zeros(1)
         k = 1
     if k >= count:
-        out = v[:count] if k > count else v
+        # more values than levels (callers avoid this): keep a spread subset
+        out = v[np.round(np.linspace(0, k - 1, count)).astype(np.intp)] if k > count else v
     elif k == 1:
         c = float(v[0])
         eps = CONSTANT_SPREAD * max(1.0, abs(c))

@@ -41,7 +41,7 @@ import math
 import numpy as np
 import scipy.linalg as sla
 
-from streamq.design._levels import codebook_from_levels
+from streamq.design._levels import codebook_from_levels, spread_levels
 from streamq.design._validate import check_levels, finite_array, histogram_arrays
 from streamq.design.codebook import Codebook
 from streamq.design.pdfs import PdfModel, pdf_model
@@ -287,7 +287,8 @@ def _split_worst(S, y, bounds, pre):
     """
     s0 = S[:, 0]
     occ = s0 > 0.0
-    d = np.where(occ, S[:, 2] - S[:, 1] * np.where(occ, y, 0.0), 0.0)
+    yo = np.where(occ, y, 0.0)
+    d = np.where(occ, S[:, 2] - 2.0 * yo * S[:, 1] + yo * yo * s0, 0.0)
     np.maximum(d, 0.0, out=d)
     empty = np.flatnonzero(~occ)
     stuck = False
@@ -295,9 +296,11 @@ def _split_worst(S, y, bounds, pre):
     shifted = pre.shifted
     lo_of = np.array(bounds[:-1], dtype=np.intp)  # bin range of each level's cell
     hi_of = np.array(bounds[1:], dtype=np.intp)
+    cand = d.copy()  # split candidates; cells found unsplittable drop out
+    filled = occ.copy()
     for e in empty:
-        j = int(np.argmax(d))
-        while d[j] > 0.0:
+        j = int(np.argmax(cand))
+        while cand[j] > 0.0:
             lo, hi = int(lo_of[j]), int(hi_of[j])
             # split at the centroid: values below it go left, the rest right
             # (shifted[m-1] < y[j] <= shifted[m], so the halves hold distinct
@@ -307,24 +310,29 @@ def _split_worst(S, y, bounds, pre):
                 l0, r0 = p0[m] - p0[lo], p0[hi] - p0[m]
                 if l0 > 0.0 and r0 > 0.0:
                     break
-            d[j] = 0.0  # this cell cannot be split; try the next worst
-            j = int(np.argmax(d))
-        if not d[j] > 0.0:
+            cand[j] = 0.0  # this cell cannot be split; try the next worst
+            j = int(np.argmax(cand))
+        if not cand[j] > 0.0:
             stuck = True
             break
         l1, r1 = p1[m] - p1[lo], p1[hi] - p1[m]
         l2, r2 = p2[m] - p2[lo], p2[hi] - p2[m]
         yl, yr = l1 / l0, r1 / r0
         y[j], y[e] = yl, yr
-        d[j] = max(l2 - l1 * yl, 0.0)
-        d[e] = max(r2 - r1 * yr, 0.0)
+        d[j] = cand[j] = max(l2 - l1 * yl, 0.0)
+        d[e] = cand[e] = max(r2 - r1 * yr, 0.0)
         hi_of[j] = m
         lo_of[e], hi_of[e] = m, hi
-    y.sort()
-    return float(d.sum()), stuck
+        filled[e] = True
+    order = np.argsort(y, kind="stable")
+    y[:] = y[order]
+    return float(d.sum()), stuck, filled[order]
 
 
 _HUGE = 1e308  # finite start value, so that the first relative change is large
+# cells lighter than this (normalised weight) take the careful path: their
+# centroid from prefix-sum differences could stray out of the cell
+_TINY = 1e-10
 
 
 def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
@@ -337,7 +345,9 @@ def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
     cells show up as a NaN distortion (0/0) and are handled outside the
     fast path, by :func:`_split_worst`.
 
-    Returns (levels, iterations, converged, history, stuck).
+    Returns (levels, iterations, converged, history, stuck) where ``stuck``
+    is None or, when empty cells could not be used, the mask of levels that
+    own data.
     """
     p0 = pre.p0
     p1 = pre.p1
@@ -367,21 +377,27 @@ def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
             s1 = g1[1:] - g1[:-1]
             y_new = s1 / s0
             D = total2 - s1.dot(y_new)
-            if not -_HUGE < D < _HUGE:  # NaN or inf: some cell is empty
+            if not -_HUGE < D < _HUGE or s0.min() < _TINY:
+                # some cell is empty (0/0) or nearly so: a centroid made of
+                # prefix-sum differences is then unreliable, so keep every
+                # level inside its own cell and re-use empty levels
                 S = pre.moments(b)
                 occ = s0 > 0.0
                 y_new[~occ] = y[~occ]
-                D, stuck = _split_worst(S, y_new, b, pre)
+                lo = b[:-1][occ]
+                hi = b[1:][occ] - 1
+                y_new[occ] = np.clip(y_new[occ], pre.shifted[lo], pre.shifted[hi])
+                D, stuck, filled = _split_worst(S, y_new, b, pre)
             y = y_new
             if D < 0.0:
                 D = 0.0  # rounding of total2 - s1.y on an exact fit
             if record:
                 history.append(D)
-            if stuck or D <= 0.0 or D_prev - D <= tol * D_prev:
+            if stuck or D_prev - D <= tol * D_prev:
                 converged = True
                 break
             D_prev = D
-    return y, it, converged, history, stuck
+    return y, it, converged, history, (filled if stuck else None)
 
 
 def _finish_histogram(pre: HistogramPrefix, lv, count, version):
@@ -512,9 +528,17 @@ def lloyd_max_histogram(
     else:
         y, it, converged, history, stuck = _lloyd_core(pre, y, float(tol), max_iter, record)
         lv = y + pre.ref
-        if stuck:
-            # all occupied cells are pure: keep one level per occupied value
-            lv = pre.centers[pre.weights() > 0]
+        if stuck is not None:
+            # every occupied cell is pure: keep the levels that own data and
+            # spread the spare ones between them
+            kept = lv[stuck]
+            # a pure cell's level is its value: snap to the exact data value
+            vals = np.unique(pre.centers[pre.weights() > 0])
+            i = np.clip(np.searchsorted(vals, kept), 1, max(vals.size - 1, 1))
+            lower = vals[i - 1]
+            upper = vals[np.minimum(i, vals.size - 1)]
+            kept = np.where(np.abs(kept - lower) <= np.abs(upper - kept), lower, upper)
+            lv = spread_levels(kept, count)
     cb, mse, probs = _finish_histogram(pre, lv, count, version)
     p = probs[probs > 0.0]
     entropy = max(-float(p.dot(np.log2(p))), 0.0)

@@ -27,7 +27,9 @@ Two measurements:
 
 Usage::
 
-    python tests/bench/bench_live.py [--seconds 10] [--no-live] [--no-offline] [--strict]
+    python tests/bench/bench_live.py [--seconds 10] [--no-live] [--no-offline] [--nodes] [--strict]
+
+``--nodes`` adds each node's step time (thread CPU) in the adaptive graph.
 
 ``--strict`` exits 1 when a measured p99 misses the target.
 """
@@ -185,7 +187,40 @@ def time_steps(adaptive: bool, x: np.ndarray, workdir: Path) -> dict:
             "steps": steps - skip, "codebook_updates": updates}
 
 
-def offline(seconds: float) -> list[float]:
+def node_breakdown(x: np.ndarray, workdir: Path) -> None:
+    """Thread CPU time of each node's step in the adaptive graph (not paced)."""
+    from streamq.engine.graph import parse_graph
+    from streamq.engine.scheduler import build
+    executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="bench-design")
+    built = build(parse_graph(graph_text(True, None), workdir / "bench.toml"), workdir,
+                  live=True, offload=executor.submit)
+    nodes, order = built.graph.nodes, built.graph.order
+    per = {nid: [] for nid in order}
+    old = sys.getswitchinterval()
+    sys.setswitchinterval(0.0005)
+    try:
+        for i in range(x.shape[0] // BLOCK):
+            nodes["mic"].feed(x[i * BLOCK:(i + 1) * BLOCK])
+            outs = {}
+            for nid in order:
+                node = nodes[nid]
+                ins = {f: outs[ref] for f, ref in node.upstream().items()}
+                c0 = time.thread_time_ns()
+                outs[nid] = node.step(BLOCK, ins)
+                per[nid].append(time.thread_time_ns() - c0)
+    finally:
+        sys.setswitchinterval(old)
+        executor.shutdown(wait=True)
+        for node in nodes.values():
+            node.close(True)
+    print("  per node, thread CPU (adaptive):")
+    skip = RATE // BLOCK // 2
+    for nid in order:
+        ms = np.array(per[nid][skip:]) / 1e6
+        show(f"  {nid} ({nodes[nid].kind})", percentiles(ms))
+
+
+def offline(seconds: float, by_node: bool = False) -> list[float]:
     x = programme(seconds)
     print(f"offline: {seconds:g} s of 128-frame steps paced at the block rate, stereo, "
           f"{BITS}-bit Lloyd-Max")
@@ -202,6 +237,9 @@ def offline(seconds: float) -> list[float]:
           f"{adaptive['cpu']['p99'] / max(fixed['cpu']['p99'], 1e-9):.2f}x")
     print(f"  adaptive, thread CPU: {verdict(adaptive['cpu']['p99'])}")
     print(f"  adaptive, wall:       {verdict(adaptive['wall']['p99'])}")
+    if by_node:
+        with tempfile.TemporaryDirectory(prefix="streamq-bench-live-") as tmp:
+            node_breakdown(x, Path(tmp))
     return [adaptive["cpu"]["p99"]]
 
 
@@ -239,6 +277,7 @@ def main() -> int:
     ap.add_argument("--seconds", type=float, default=10.0, help="audio per measurement (default 10)")
     ap.add_argument("--no-live", action="store_true", help="skip the JACK run")
     ap.add_argument("--no-offline", action="store_true", help="skip the offline step timing")
+    ap.add_argument("--nodes", action="store_true", help="also time each node's step (offline)")
     ap.add_argument("--strict", action="store_true", help="exit 1 if a p99 misses the target")
     args = ap.parse_args()
     print(f"block {BLOCK} frames at {RATE} Hz = {PERIOD_MS:.3f} ms; target p99 < "
@@ -246,7 +285,7 @@ def main() -> int:
           f"on {os.cpu_count()} cores")
     p99s: list[float] = []
     if not args.no_offline:
-        p99s += offline(args.seconds)
+        p99s += offline(args.seconds, args.nodes)
     if not args.no_live:
         p99s += live(args.seconds)
     missed = any(p / PERIOD_MS >= TARGET for p in p99s)

@@ -135,10 +135,10 @@ def process_file(job: dict[str, Any]) -> dict[str, Any]:
     Returns
     -------
     dict with ``input``, ``folder``, ``status`` ("done", "failed", "interrupted"
-    or "not run"), ``error`` (one line, or None), ``samples``, ``audio_seconds``
-    and ``seconds`` (wall time).
+    or "not run"), ``error`` (one line, or None), ``samples``, ``audio_seconds``,
+    ``seconds`` (wall time) and ``cpu_seconds`` (CPU time of the thread that ran it).
     """
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.thread_time()
     inp, folder = Path(job["input"]), Path(job["folder"])
     out: dict[str, Any] = {"input": str(inp), "folder": str(folder), "status": "not run",
                            "error": None, "samples": 0, "audio_seconds": 0.0, "seconds": 0.0}
@@ -172,10 +172,12 @@ def process_file(job: dict[str, Any]) -> dict[str, Any]:
     except Exception as exc:  # one bad file must not stop the batch: record it
         out.update(status="failed", error=one_line(exc))
     out["seconds"] = time.perf_counter() - t0
+    out["cpu_seconds"] = time.thread_time() - c0
     marker = {"input": str(inp), "size": stamp[0] if stamp else None,
               "mtime_ns": stamp[1] if stamp else None, "setup": job["setup"],
               "status": out["status"], "error": out["error"], "samples": out["samples"],
               "audio_seconds": out["audio_seconds"], "seconds": out["seconds"],
+              "cpu_seconds": out["cpu_seconds"],
               "finished": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
     try:
         _write_json(folder / MARKER, marker)

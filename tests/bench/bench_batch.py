@@ -15,7 +15,7 @@ the design library is not available).
 Usage::
 
     python tests/bench/bench_batch.py [--files 20] [--seconds 60] [--chain replay|simple]
-                                      [--dask]
+                                      [--repeat N] [--dask]
 
 ``--dask`` also times ``--cluster local:2`` (for information; no target).
 """
@@ -84,8 +84,9 @@ def run_batch(graph: Path, inputs: Path, out: Path, *engine: str) -> dict:
         sys.exit(f"batch failed ({' '.join(engine)}): exit {r.returncode}\n{r.stderr}")
     s = json.loads((out / "summary.json").read_text())
     audio, wall = s["this_run"]["audio_seconds"], s["this_run"]["wall_seconds"]
+    cpu = sum(json.loads(m.read_text())["cpu_seconds"] for m in (out / "files").glob("*/batch.json"))
     return {"audio": audio, "wall": wall, "speed": audio / wall, "engine": s["engine"],
-            "totals": s["totals"], "load": load}
+            "totals": s["totals"], "load": load, "cores": cpu / wall}
 
 
 def main() -> int:
@@ -93,6 +94,8 @@ def main() -> int:
     ap.add_argument("--files", type=int, default=20)
     ap.add_argument("--seconds", type=float, default=60.0)
     ap.add_argument("--chain", choices=("replay", "simple"), default="replay")
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="time each configuration this many times (alternating) and keep the best")
     ap.add_argument("--dask", action="store_true", help="also time --cluster local:2")
     a = ap.parse_args()
     with tempfile.TemporaryDirectory(prefix="streamq-bench-batch-") as tmp:
@@ -105,22 +108,32 @@ def main() -> int:
               f"{time.perf_counter() - t0:.1f} s; chain: "
               + ("replay (adaptive 8-bit Lloyd-Max, meter, file-sink)" if a.chain == "replay"
                  else "simple (file-source, meter, file-sink)"))
-        one = run_batch(graph, tmp / "archive", tmp / "w1", "--workers", "1")
-        print(f"1 worker : {one['audio']:.0f} s of audio in {one['wall']:.2f} s "
-              f"({one['speed']:.1f}x real time; load average before: {one['load']:.2f})")
-        two = run_batch(graph, tmp / "archive", tmp / "w2", "--workers", "2")
-        print(f"2 workers: {two['audio']:.0f} s of audio in {two['wall']:.2f} s "
-              f"({two['speed']:.1f}x real time; load average before: {two['load']:.2f})")
+        runs: dict[int, list[dict]] = {1: [], 2: []}
+        for rep in range(a.repeat):
+            for workers in ((1, 2) if rep % 2 == 0 else (2, 1)):
+                r = run_batch(graph, tmp / "archive", tmp / f"w{workers}-{rep}",
+                              "--workers", str(workers))
+                runs[workers].append(r)
+                print(f"{workers} worker{'s' if workers > 1 else ' '}: {r['audio']:.0f} s of audio "
+                      f"in {r['wall']:.2f} s ({r['speed']:.1f}x real time; the workers got "
+                      f"{r['cores']:.2f} cores; load average before: {r['load']:.2f})")
+        # Best of the repeats: other processes sharing the cores only ever slow a run down.
+        one = max(runs[1], key=lambda r: r["speed"])
+        two = max(runs[2], key=lambda r: r["speed"])
+        if a.repeat > 1:
+            print(f"best of {a.repeat}: 1 worker {one['speed']:.1f}x, 2 workers "
+                  f"{two['speed']:.1f}x real time")
         if one["totals"] != two["totals"]:
             print("MISMATCH: the two runs' totals differ")
             return 1
         ratio = two["speed"] / one["speed"]
         verdict = "PASS" if ratio >= TARGET else "MISS"
         print(f"throughput ratio 2 workers / 1 worker: {ratio:.2f} (target >= {TARGET}) {verdict}")
-        if os.cpu_count() and max(one["load"], two["load"]) > 0.5:
-            print(f"note: other processes were using the CPUs (load average up to "
-                  f"{max(one['load'], two['load']):.1f} on {os.cpu_count()} cores); the ratio "
-                  f"measures what the pool got, not what it can do on idle cores")
+        worst = max(r["load"] for rs in runs.values() for r in rs)
+        if worst > 0.5:
+            print(f"note: other processes were using the CPUs (load average up to {worst:.1f} on "
+                  f"{os.cpu_count()} cores); the ratio measures what the pool got, not what it "
+                  f"can do on idle cores")
         if a.dask:
             d = run_batch(graph, tmp / "archive", tmp / "dask", "--cluster", "local:2")
             print(f"Dask local:2: {d['wall']:.2f} s ({d['speed']:.1f}x real time), "

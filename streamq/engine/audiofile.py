@@ -73,6 +73,25 @@ def _truncated(f) -> tuple[int, int] | None:
     return None
 
 
+#: Float samples beyond this magnitude (+60 dB above full scale) are refused:
+#: such files were written with integer-scaled floats (32767, 8388607, ...) or
+#: hold garbage, and their squares overflow the meter and the design math.
+FAR_BEYOND_FULL_SCALE = 1000.0
+
+
+def far_beyond_full_scale(data: np.ndarray, start: int, path: Path) -> str | None:
+    """A one-line message for the first finite sample beyond
+    :data:`FAR_BEYOND_FULL_SCALE` in ``data`` (frames, channels), else None."""
+    over = np.abs(data) > FAR_BEYOND_FULL_SCALE
+    if not over.any():
+        return None
+    frame, ch = np.argwhere(over)[0]
+    value = float(data[frame, ch])
+    return (f"{path}: sample {start + int(frame)} is {value:.6g}, more "
+            f"than 60 dB above full scale (1.0); streamq takes float audio with full scale "
+            f"= 1 (was the file written with integer-scaled samples?)")
+
+
 class _Info:
     __slots__ = ("samplerate", "channels", "frames", "subtype", "format")
 

@@ -218,13 +218,16 @@ class Encoder(Node):
         return out
 
     def _read_training(self, ctx) -> np.ndarray:
-        from streamq.engine.audiofile import open_for_reading
+        from streamq.engine.audiofile import far_beyond_full_scale, open_for_reading
         path = ctx.resolve_input(self.config.train)
         f, info = open_for_reading(path, lambda m: self.fail("train", m))
         with f:
             x = f.read(dtype="float64", always_2d=True).ravel()
         if not np.all(np.isfinite(x)):
             raise self.fail("train", f"{path}: holds NaN or infinite samples")
+        problem = far_beyond_full_scale(x[:, None], 0, path)
+        if problem:
+            raise self.fail("train", problem)
         return x
 
     def _announce(self, t: int, ch: int, cb, bits: int) -> None:

@@ -12,7 +12,7 @@ from streamq.engine.blocks import Packet, SignalBlock, StreamSpec
 from streamq.engine.node import NodeConfig, RunContext, SourceNode, input_path
 from streamq.engine.registry import register
 from streamq.nodes import scenes
-from streamq.engine.audiofile import open_for_reading, subtype_bits
+from streamq.engine.audiofile import far_beyond_full_scale, open_for_reading, subtype_bits
 
 
 class FileSourceConfig(NodeConfig):
@@ -71,6 +71,7 @@ class FileSource(SourceNode):
             raise self.fail("channels", f"{self.path} has {info.channels} channel(s); "
                                         f"cannot pick channel {max(picks)}")
         self._file = f
+        self.floats = subtype_bits(info.subtype) is None  # integer PCM cannot exceed full scale
         self._pick = None if picks is None else np.asarray(picks) - 1
         self.length = info.frames
         nch = info.channels if picks is None else len(picks)
@@ -93,6 +94,10 @@ class FileSource(SourceNode):
                                         f"(set nonfinite = \"zero\" to replace such samples with 0)")
             self.replaced += int(bad.sum())
             data = np.where(bad, 0.0, data)
+        if self.floats:
+            problem = far_beyond_full_scale(data, self.position, self.path)
+            if problem:
+                raise self.fail("path", problem)
         block = SignalBlock(data, self.position, self.spec.rate)
         self.position += frames
         return Packet(block)

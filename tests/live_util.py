@@ -122,6 +122,7 @@ class JackServer:
         if self._log is not None:
             self._log.close()
             self._log = None
+            self.log_path.unlink(missing_ok=True)
 
     def __enter__(self) -> "JackServer":
         return self.start()

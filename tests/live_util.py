@@ -101,14 +101,15 @@ class JackServer:
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
-                raise RuntimeError(f"jackd exited with status {self.proc.returncode}:\n"
-                                   f"{self.log_tail()}")
+                status, tail = self.proc.returncode, self.log_tail()
+                self.stop()
+                raise RuntimeError(f"jackd exited with status {status}:\n{tail}")
             if "system:capture_1" in self.ports():
                 return self
             time.sleep(0.1)
+        tail = self.log_tail()
         self.stop()
-        raise RuntimeError(f"jackd '{self.name}' did not answer within {timeout} s:\n"
-                           f"{self.log_tail()}")
+        raise RuntimeError(f"jackd '{self.name}' did not answer within {timeout} s:\n{tail}")
 
     def stop(self) -> None:
         if self.proc is not None and self.proc.poll() is None:

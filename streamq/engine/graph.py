@@ -174,6 +174,9 @@ def parse_graph(text: str, source: Path | None = None, overrides: list[str] = ()
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise GraphError([f"{label}: TOML syntax error: {exc}"]) from None
+    except RecursionError:  # tomllib parses nested arrays and inline tables recursively
+        raise GraphError([f"{label}: TOML syntax error: arrays or inline tables nested too "
+                          f"deeply"]) from None
     return validate_graph(raw, source, overrides)
 
 

@@ -23,7 +23,7 @@ from streamq.engine.node import Node, NodeConfig
 from streamq.engine.registry import registry
 from streamq.errors import StreamqError
 
-_ID = re.compile(r"^[A-Za-z_][A-Za-z0-9_-]{0,63}$")
+_ID = re.compile(r"[A-Za-z_][A-Za-z0-9_-]{0,63}\Z")
 
 
 class GraphError(StreamqError):

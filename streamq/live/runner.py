@@ -11,6 +11,7 @@ CodebookUpdate, so an offline replay with the recorded events is bit-exact.
 
 from __future__ import annotations
 
+import signal
 import sys
 import threading
 import time
@@ -65,11 +66,13 @@ class LiveRun:
         self.times = np.zeros(TIMES)
         self.calls = 0
         self.status = dict.fromkeys(STATUS_FLAGS, 0)
+        self.xrun_calls = 0
+        self.sd = None
         self.error: BaseException | None = None
         self.done = threading.Event()
 
     def callback(self, *args):
-        import sounddevice as sd
+        sd = self.sd
         t0 = time.perf_counter()
         if len(args) == 5:
             indata, outdata, frames, _t, status = args
@@ -80,9 +83,13 @@ class LiveRun:
             outdata, frames, _t, status = args
             indata = None
         if status:
+            hit = False
             for flag in STATUS_FLAGS:
                 if getattr(status, flag, False):
                     self.status[flag] += 1
+                    hit = hit or flag != "priming_output"
+            # one dropout often sets both an input and an output flag: count callbacks
+            self.xrun_calls += hit
         try:
             n = frames
             if self.length is not None:
@@ -112,8 +119,8 @@ class LiveRun:
 
     @property
     def xruns(self) -> int:
-        return (self.status["input_overflow"] + self.status["output_underflow"]
-                + self.status["input_underflow"] + self.status["output_overflow"])
+        """Callbacks that PortAudio flagged with an overflow or underflow."""
+        return self.xrun_calls
 
     def timing(self) -> dict:
         n = min(self.calls, TIMES)
@@ -157,6 +164,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
     try:
         rate = built.ctx.sample_rate
         run = LiveRun(built, block, None if seconds is None else int(round(seconds * rate)))
+        run.sd = sd
         kwargs = dict(samplerate=rate, blocksize=block, dtype="float32", callback=run.callback)
         try:
             if run.inp and run.out:
@@ -180,6 +188,15 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         sys.setswitchinterval(0.0005)  # the design worker must not hold the GIL for long
         meter = _terminal_meter(args)
         interrupted = False
+        old_term = None
+
+        def on_term(signum, frame):
+            raise KeyboardInterrupt
+
+        try:
+            old_term = signal.signal(signal.SIGTERM, on_term)
+        except ValueError:  # not the main thread
+            pass
         try:
             with stream:
                 try:
@@ -192,6 +209,8 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                     interrupted = True
         finally:
             sys.setswitchinterval(old_switch)
+            if old_term is not None:
+                signal.signal(signal.SIGTERM, old_term)
             if meter:
                 meter.close()
         if run.error is not None:
@@ -216,9 +235,10 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
             "worker_errors": sum(getattr(n, "worker_errors", 0) if isinstance(
                 getattr(n, "worker_errors", 0), int) else len(n.worker_errors)
                 for n in built.graph.nodes.values())}
-    report = make_report(built, complete=True, samples=run.pos, seconds=run.pos / rate,
-                         extra={"live": live})
-    report["complete"] = True  # a live run stopped by Ctrl-C or --seconds is a whole run
+    # as offline: a run stopped by Ctrl-C/SIGTERM says "complete": false (its outputs are
+    # still closed and valid); one that reached --seconds or its source's end is complete
+    report = make_report(built, complete=not interrupted, samples=run.pos,
+                         seconds=run.pos / rate, extra={"live": live})
     report["stopped_by"] = "interrupt" if interrupted else ("seconds" if seconds else "end")
     write_report(out_dir, report)
     _after(out_dir, report, args)

@@ -127,9 +127,10 @@ class Encoder(Node):
             if c.design_from == "model" and est.get("fit", "none") == "none":
                 raise self.fail("design_from", f"design_from = \"model\" needs a fit on "
                                                f"pdf-estimator '{c.pdf}' (set its field 'fit')")
-        if c.adapt == "lookahead":
+        if c.adapt == "lookahead" and est is not None:
             self.delay = int(est["window"])
         self.int16 = spec.int_bits == 16
+        self.in_latency = spec.latency
         self.min_interval = c.min_interval.samples(self.rate)
         self.version = [0] * self.C
         self.updates = 0
@@ -198,6 +199,8 @@ class Encoder(Node):
             raise self.fail("codebooks_from", f"{path} holds {reader.spec.channels} channel(s) of "
                                               f"{info.get('n_levels')} levels; this encoder has "
                                               f"{self.C} of {self.L}")
+        # a replayed stream keeps the recording's delay (lookahead recordings are late)
+        self.delay = max(0, reader.spec.latency - self.in_latency)
         self.replay = iter(reader)
         self.replay_reader = reader
         self.replay_buf: list[CodebookUpdate] = []
@@ -255,6 +258,9 @@ class Encoder(Node):
         if self.config.trigger == "drift" and ref is not None:
             return self.drift[ch] > self.config.drift_threshold
         return True
+
+    def _consider_and_design(self, snap):
+        return self._design(snap) if self._consider(snap) else None
 
     def _design(self, snap):
         c = self.config
@@ -368,8 +374,8 @@ class Encoder(Node):
                     continue
                 if any(j[0].channel == ev.channel for j in self.jobs):
                     continue   # the worker is behind: skip, the next snapshot is fresher
-                if self._consider(ev):
-                    self.jobs.append((ev, self.ctx.offload(self._design, ev)))
+                # the drift statistic and the design both run on the worker
+                self.jobs.append((ev, self.ctx.offload(self._consider_and_design, ev)))
 
     def report(self):
         extra = {"worker_errors": len(self.worker_errors),

@@ -207,6 +207,7 @@ class PdfEstimator(Node):
         self.live = bool(ctx.live and ctx.offload is not None)
         self.jobs: list = []
         self.worker_errors = 0
+        self.skipped = 0
         return StreamSpec("signal", rate, self.C, spec.latency, spec.int_bits, spec.frames,
                           {**spec.extra, "estimator": {"window": self.W, "hop": self.H,
                                                         "bins": self.config.bins,
@@ -276,7 +277,11 @@ class PdfEstimator(Node):
             pos = t - s
             if self.live:
                 # live runs: the worker computes the snapshot from a copy of the
-                # window; it travels with the first block after it is ready
+                # window; it travels with the first block after it is ready. A
+                # worker that falls behind skips hops instead of piling them up.
+                if len(self.jobs) >= 2:
+                    self.skipped += 1
+                    continue
                 self.jobs.append(self.ctx.offload(self._snapshot, t, self._window(min(self.W, t))))
                 continue
             snaps = self._snapshot(t)
@@ -290,7 +295,7 @@ class PdfEstimator(Node):
 
     def report(self):
         return {"snapshots": self.snapshots, "window_samples": self.W, "hop_samples": self.H,
-                "worker_errors": self.worker_errors}
+                "worker_errors": self.worker_errors, "hops_skipped": self.skipped}
 
     def get_state(self):
         return {"buf": self.buf.copy(), "written": self.written, "pending": list(self.pending),

@@ -121,13 +121,15 @@ class LiveOutput(Node):
         x = inputs["input"].block.data
         if self.delay is not None:
             x = x - self.delay.push(inputs["reference"].block.data)
-        # gain ramp in dB, linear per sample across the block
-        g0 = 20.0 * np.log10(self.gain)
-        g1t = 20.0 * np.log10(self.target)
-        step_db = np.clip(g1t - g0, -self.db_per_sample * frames, self.db_per_sample * frames)
-        ramp = 10.0 ** ((g0 + step_db * (np.arange(1, frames + 1) / frames)) / 20.0)
-        self.gain = float(ramp[-1])
-        y = x * ramp[:, None]
+        if self.gain == self.target:   # steady: one multiply
+            y = x * self.gain
+        else:                          # gain ramp in dB, linear per sample across the block
+            g0 = 20.0 * np.log10(self.gain)
+            g1t = 20.0 * np.log10(self.target)
+            step_db = np.clip(g1t - g0, -self.db_per_sample * frames, self.db_per_sample * frames)
+            ramp = 10.0 ** ((g0 + step_db * (np.arange(1, frames + 1) / frames)) / 20.0)
+            self.gain = self.target if abs(g1t - g0 - step_db) < 1e-9 else float(ramp[-1])
+            y = x * ramp[:, None]
         # limiter: instant attack per block, slow release, hard ceiling as a last guard
         peak = float(np.max(np.abs(y))) if y.size else 0.0
         need = self.ceiling / peak if peak > self.ceiling else 1.0

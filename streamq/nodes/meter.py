@@ -77,6 +77,9 @@ class ErrorMeter(Node):
         if not lo < hi:
             raise self.fail("clamp", "give [low, high] with low < high")
         self.F = max(1, self.config.frame.samples(self.rate))
+        if self.F > 60 * self.rate:  # a frame is buffered whole
+            raise self.fail("frame", f"{self.config.frame!r} is longer than a minute; segmental "
+                                     f"SNR frames are usually 10 to 30 ms")
         self.S = max(1, round(self.config.series.samples(self.rate) / self.F))
         self.N = self.config.spectrum_size
         self.total_frames = inp.frames

@@ -184,7 +184,7 @@ def load_graph(path: str | Path, overrides: list[str] = ()) -> Graph:
     """Read and validate a graph file."""
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark from some editors is fine
     except FileNotFoundError:
         raise StreamqError(f"{path}: no such graph file") from None
     except (OSError, UnicodeDecodeError) as exc:

@@ -49,17 +49,20 @@ def test_property_distortion_never_increases_never_nan(case):
     assert np.all(np.isfinite(h))
     mean = float(np.dot(w, c) / w.sum())
     scale = float(np.dot(w, (c - mean) ** 2) / w.sum()) + 1e-300  # variance
-    assert np.all(np.diff(h) <= 1e-12 * scale)
+    # float64 resolves a distortion only to about eps * power: for data far
+    # from zero compared with its spread, the mean enters the rounding
+    slack = 1e-11 * scale + 1e-12 * mean * mean
+    assert np.all(np.diff(h) <= slack)
     if h.size:
-        assert rep.mse <= h[-1] + 1e-12 * scale
+        assert rep.mse <= h[-1] + slack
     assert np.all(np.isfinite(cb.levels)) and np.all(np.isfinite(cb.thresholds))
     assert np.isfinite(rep.mse) and np.isfinite(rep.entropy_bits) and not np.isnan(rep.snr_db)
     assert cb.size == L
     # the reported figures are those of the returned codebook
     idx = np.searchsorted(cb.thresholds, c, side="right")
     mse = float(np.dot(w, (c - cb.levels[idx]) ** 2) / w.sum())
-    # prefix sums about the mean: absolute error of order eps * variance
-    assert rep.mse == pytest.approx(mse, rel=1e-9, abs=1e-11 * scale)
+    # prefix sums about the mean: absolute error of order eps * power
+    assert rep.mse == pytest.approx(mse, rel=1e-9, abs=slack)
 
 
 def test_fixed_point_meets_lloyd_conditions():

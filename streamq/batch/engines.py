@@ -38,9 +38,6 @@ def _start_method() -> str:
 class LocalPool:
     """A pool of worker processes on this machine."""
 
-    def check_workers(self, paths: list[str]) -> int:
-        return self.workers
-
     def __init__(self, workers: int):
         self.workers = workers
         ctx = mp.get_context(_start_method())
@@ -49,6 +46,9 @@ class LocalPool:
         self.executor = ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
                                             initializer=ignore_sigint)
         self.futures: list[Any] = []
+
+    def check_workers(self, paths: list[str]) -> int:
+        return self.workers  # same machine: same files
 
     def describe(self) -> str:
         return f"local pool of {self.workers} worker process{'es' if self.workers != 1 else ''}"

@@ -225,7 +225,11 @@ class Encoder(Node):
         path = ctx.resolve_input(self.config.train)
         f, info = open_for_reading(path, lambda m: self.fail("train", m))
         with f:
-            x = f.read(dtype="float64", always_2d=True).ravel()
+            try:
+                x = f.read(dtype="float64", always_2d=True).ravel()
+            except (RuntimeError, OSError) as exc:  # soundfile.LibsndfileError
+                raise self.fail("train", f"{path}: cannot read it ({str(exc).strip()}); is the "
+                                         f"file damaged or cut short?") from None
         if not np.all(np.isfinite(x)):
             raise self.fail("train", f"{path}: holds NaN or infinite samples")
         problem = far_beyond_full_scale(x[:, None], 0, path)

@@ -79,7 +79,12 @@ class FileSource(SourceNode):
                           info.frames, {"path": str(self.path), "subtype": info.subtype})
 
     def step(self, frames, inputs) -> Packet:
-        data = self._file.read(frames, dtype="float64", always_2d=True)
+        try:
+            data = self._file.read(frames, dtype="float64", always_2d=True)
+        except (RuntimeError, OSError) as exc:  # soundfile.LibsndfileError is a RuntimeError
+            raise self.fail("path", f"{self.path}: cannot read past sample {self.position} "
+                                    f"({str(exc).strip() or type(exc).__name__}); is the file "
+                                    f"damaged or cut short?") from None
         if data.shape[0] < frames:
             raise self.fail("path", f"{self.path}: file ended early at sample "
                                     f"{self.position + data.shape[0]} (expected {self.length}); "

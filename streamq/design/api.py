@@ -35,7 +35,7 @@ import math
 
 import numpy as np
 
-from streamq.design._validate import check_levels, finite_array
+from streamq.design._validate import check_levels, finite_array, histogram_arrays
 from streamq.design.codebook import Codebook
 from streamq.design.compander import (
     compander_codebook,
@@ -100,7 +100,7 @@ def _evaluate(method, cb, data, details=None) -> DesignReport:
         return make_report(method, cb, 0, True, mse=mse, probs=probs, power=payload.power,
                            reference=f"pdf:{payload!r}", details=details)
     if kind == "histogram":
-        c, w = payload
+        c, w = histogram_arrays(*payload)
         mse, probs = evaluate_histogram(cb.levels, cb.thresholds, c, w)
         power = float(np.dot(w, c * c) / w.sum())
         return make_report(method, cb, 0, True, mse=mse, probs=probs, power=power,
@@ -137,9 +137,8 @@ def _data(pdf, centers, weights, samples, options):
         return ("pdf", pdf_model(pdf, options.pop("mean", 0.0), options.pop("std", 1.0),
                                  options.pop("shape", None)))
     if centers is not None:
-        from streamq.design._validate import histogram_arrays
-
-        return ("histogram", histogram_arrays(centers, weights))
+        # checked by the routine that takes it (once: this is the hot path)
+        return ("histogram", (centers, weights))
     if samples is not None:
         return ("samples", finite_array(samples, "samples"))
     return (None, None)

@@ -412,7 +412,7 @@ def _finish_histogram(pre: HistogramPrefix, lv, count, version):
     """
     ok = lv.size == count
     if ok:
-        gaps = np.diff(lv)
+        gaps = lv[1:] - lv[:-1]
         th = lv[:-1] + 0.5 * gaps
         ok = gaps.min() > 0.0 and (count == 2 or bool((th[1:] > th[:-1]).all()))
     if ok:

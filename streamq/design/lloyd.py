@@ -79,9 +79,10 @@ class HistogramPrefix:
         ``centers - ref``.
     ref : float
         Shift applied to the centers.
-    p0, p1 : ndarray
-        Cumulative sums (length ``bins + 1``, leading zero) of the normalised
-        weights ``w`` and of ``w * (c - ref)``.
+    p01 : ndarray, shape (bins + 1, 2)
+        Cumulative sums (leading row of zeros) of the normalised weights
+        ``w`` and of ``w * (c - ref)``, interleaved so that one gather fetches
+        both; ``p0`` and ``p1`` are its two columns.
     total2 : float
         ``sum w (c - ref)**2`` (normalised weights).
     power : float
@@ -93,15 +94,16 @@ class HistogramPrefix:
         Sum of the original weights.
     """
 
-    __slots__ = ("centers", "shifted", "ref", "p0", "p1", "_p2", "total2", "power",
+    __slots__ = ("centers", "shifted", "ref", "p01", "p0", "p1", "_p2", "total2", "power",
                  "occupied", "total")
 
-    def __init__(self, centers, shifted, ref, p0, p1, total2, power, occupied, total):
+    def __init__(self, centers, shifted, ref, p01, total2, power, occupied, total):
         self.centers = centers
         self.shifted = shifted
         self.ref = ref
-        self.p0 = p0
-        self.p1 = p1
+        self.p01 = p01
+        self.p0 = p01[:, 0]
+        self.p1 = p01[:, 1]
         self._p2 = None
         self.total2 = total2
         self.power = power
@@ -193,18 +195,16 @@ def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPre
         ref = 0.5 * (float(c[0]) + float(c[-1]))
     cs = c - ref
     wn = w * (1.0 / total)
-    p0 = np.empty(n + 1)
-    p1 = np.empty(n + 1)
-    p0[0] = 0.0
-    p1[0] = 0.0
-    np.cumsum(wn, out=p0[1:])
+    p01 = np.empty((n + 1, 2))
+    p01[0] = 0.0
+    np.cumsum(wn, out=p01[1:, 0])
     wc = wn * cs
-    np.cumsum(wc, out=p1[1:])
+    np.cumsum(wc, out=p01[1:, 1])
     total2 = float(wc.dot(cs))
-    mean_s = float(p1[-1])
+    mean_s = float(p01[-1, 1])
     power = total2 + 2.0 * ref * mean_s + ref * ref
     single = c[0] == c[-1] or float(w.max()) == total
-    return HistogramPrefix(c, cs, ref, p0, p1, total2, max(power, 0.0),
+    return HistogramPrefix(c, cs, ref, p01, total2, max(power, 0.0),
                            1 if single else -1, total)
 
 
@@ -353,16 +353,16 @@ def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
     is None or, when empty cells could not be used, the mask of levels that
     own data.
     """
-    p0 = pre.p0
-    p1 = pre.p1
+    p01 = pre.p01
     cs2 = pre.shifted * 2.0
     L = y.size
     total2 = pre.total2
-    b = np.empty(L + 1, dtype=np.intp)
-    b[0] = 0
-    b[-1] = cs2.size
-    inner = b[1:-1]
-    t2 = np.empty(L - 1)
+    # doubled thresholds with -inf/+inf ends: one searchsorted gives the
+    # cell bounds [0, k_1, ..., k_{L-1}, bins] directly
+    t2 = np.empty(L + 1)
+    t2[0] = -np.inf
+    t2[-1] = np.inf
+    t2_inner = t2[1:-1]
     y = np.array(y, dtype=np.float64)
     history = [] if record else None
     D_prev = _HUGE
@@ -373,12 +373,12 @@ def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
     add = np.add
     with np.errstate(divide="ignore", invalid="ignore"):
         for it in range(1, max_iter + 1):
-            add(y[:-1], y[1:], out=t2)
-            inner[:] = searchsorted(cs2, t2)
-            g0 = p0[b]
-            g1 = p1[b]
-            s0 = g0[1:] - g0[:-1]
-            s1 = g1[1:] - g1[:-1]
+            add(y[:-1], y[1:], out=t2_inner)
+            b = searchsorted(cs2, t2)
+            G = p01[b]
+            S = G[1:] - G[:-1]
+            s0 = S[:, 0]
+            s1 = S[:, 1]
             y_new = s1 / s0
             D = total2 - s1.dot(y_new)
             if not -_HUGE < D < _HUGE or s0.min() < _TINY:
@@ -420,14 +420,15 @@ def _finish_histogram(pre: HistogramPrefix, lv, count, version):
     else:
         cb = codebook_from_levels(lv, count, version)
     lv = cb.levels - pre.ref
-    b = np.empty(count + 1, dtype=np.intp)
-    b[0] = 0
-    b[-1] = pre.shifted.size
-    b[1:-1] = np.searchsorted(pre.shifted, cb.thresholds - pre.ref)
-    g0 = pre.p0[b]
-    g1 = pre.p1[b]
-    s0 = g0[1:] - g0[:-1]
-    s1 = g1[1:] - g1[:-1]
+    t = np.empty(count + 1)
+    t[0] = -np.inf
+    t[-1] = np.inf
+    np.subtract(cb.thresholds, pre.ref, out=t[1:-1])
+    b = np.searchsorted(pre.shifted, t)
+    G = pre.p01[b]
+    S = G[1:] - G[:-1]
+    s0 = S[:, 0]
+    s1 = S[:, 1]
     mse = pre.total2 - 2.0 * float(lv.dot(s1)) + float((lv * lv).dot(s0))
     if mse < 1e-13 * pre.total2:
         # at the rounding level of the prefix sums (a near-exact fit): measure

@@ -219,10 +219,12 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 raise err
             raise StreamqError(f"live run stopped at sample {run.pos}: "
                                f"{type(err).__name__}: {err}") from None
+        # let the worker finish what the callback handed it (meters sum their frames
+        # there in live runs), then flush the nodes
+        executor.shutdown(wait=True)
         for nid in built.graph.order:
             built.graph.nodes[nid].finish()
         complete = not interrupted
-        executor.shutdown(wait=True, cancel_futures=True)
     finally:
         executor.shutdown(wait=False, cancel_futures=True)
         for nid in built.graph.order:

@@ -116,6 +116,9 @@ class ErrorMeter(Node):
         # codebook pictures for the report: first, middle, last (channel 0)
         self.picks: dict[str, dict] = {}
         self.cur_pick: dict | None = None
+        self.tail = np.zeros(1 << 19)   # about 11 s at 48 kHz
+        self.tail_n = 0
+        self.live = bool(ctx.live and ctx.offload is not None)
         return None
 
     # -- codebooks -------------------------------------------------------------
@@ -147,7 +150,31 @@ class ErrorMeter(Node):
         self.cur_pick = {"version": u.version, "at_sample": u.at_sample, "method": u.method,
                          "thresholds": np.asarray(u.thresholds).tolist(), "levels": lv.tolist(),
                          "range": [float(lv[0] - 0.25 * span), float(lv[-1] + 0.25 * span)],
-                         "counts": np.zeros(200, dtype=np.int64), "until": None}
+                         "counts": np.zeros(200, dtype=np.int64), "until": None,
+                         "from_m": max(0, u.at_sample - self.d),
+                         "accumulate": self._may_be_kept(u.at_sample)}
+
+    def _may_be_kept(self, at: int) -> bool:
+        """Only the first codebook's picture is summed as the run goes; the middle
+        and last ones are pictured from the kept tail of the signal."""
+        return "first" not in self.picks and self.cur_pick is None
+
+    def _tail_counts(self, p: dict, end_m: int | None = None) -> None:
+        """Picture codebook ``p`` from the kept tail: its span up to measured
+        sample ``end_m`` (default: all kept), as far back as the tail reaches."""
+        R = self.tail.shape[0]
+        end_m = self.tail_n if end_m is None else end_m
+        lo = max(p["from_m"], self.tail_n - R)
+        n = end_m - lo
+        if n <= 0:
+            return
+        end = end_m % R
+        x = self.tail[end - n:end] if n <= end else np.concatenate([self.tail[R - (n - end):],
+                                                                     self.tail[:end]])
+        plo, phi = p["range"]
+        k = ((x - plo) * (200 / (phi - plo))).astype(np.int64)
+        p["counts"] = np.bincount(k[(k >= 0) & (k < 200)], minlength=200)
+        p["pictured_from"] = lo + self.d
 
     def _pick_end(self, at: int) -> None:
         p = self.cur_pick
@@ -161,6 +188,11 @@ class ErrorMeter(Node):
         if self.total_frames and p["at_sample"] <= mid < at:
             self.picks["middle"] = p
         self.cur_pick = None
+
+    def _picture_last(self) -> None:
+        p = self.picks.get("last")
+        if p is not None and not p["accumulate"]:
+            self._tail_counts(p)
 
     def _apply(self, u: CodebookUpdate) -> None:
         ch = u.channel
@@ -179,61 +211,85 @@ class ErrorMeter(Node):
 
     # -- one step --------------------------------------------------------------
     def step(self, frames, inputs) -> None:
-        ref = inputs["reference"].block.data
+        ref = self.refdelay.push(inputs["reference"].block.data)
         pkt = inputs["input"]
         x = pkt.block.data
         s = pkt.block.start
-        ref = self.refdelay.push(ref)
-        updates = sorted((u for u in pkt.events if isinstance(u, CodebookUpdate)),
-                         key=lambda u: u.at_sample)
+        C = self.C
+        updates = [u for u in pkt.events if isinstance(u, CodebookUpdate)]
         idx = pkt.indices.data if pkt.indices is not None else None
         skip = min(frames, max(0, self.d - s))   # latency pre-roll: nothing to compare yet
-        # per-sample codebook bounds, index counts and codebook pictures, segment by segment
-        lo = np.empty((frames, self.C))
-        hi = np.empty((frames, self.C))
-        ver = np.empty((frames, 1))  # channel 0's codebook version, for the time series
-        cuts = sorted({u.at_sample - s for u in updates} | {0, frames})
+        n = frames - skip
+        # one row per measured sample: reference, error, overload flag per channel,
+        # and channel 0's codebook version (for the time series)
+        rows = np.empty((n, 3 * C + 1))
+        if n:
+            rows[:, :C] = ref[skip:]
+            np.subtract(x[skip:], ref[skip:], out=rows[:, C:2 * C])
+            self._keep_tail(rows[:, 0])
+        mid = (self.total_frames or 0) // 2
+        if updates:
+            updates.sort(key=lambda u: u.at_sample)
+            cuts = sorted({u.at_sample - s for u in updates} | {0, frames})
+        else:
+            cuts = (0, frames)
         ui = 0
         for a, b in zip(cuts[:-1], cuts[1:]):
             while ui < len(updates) and updates[ui].at_sample - s <= a:
                 self._apply(updates[ui])
                 ui += 1
-            lo[a:b] = self.bounds[:, 0]
-            hi[a:b] = self.bounds[:, 1]
-            ver[a:b] = -1 if self.version[0] is None else self.version[0]
             a2 = max(a, skip)
             if a2 >= b:
                 continue
+            rr = ref[a2:b]
+            seg = rows[a2 - skip:b - skip]
+            seg[:, 2 * C:3 * C] = (rr < self.bounds[:, 0]) | (rr > self.bounds[:, 1])
+            seg[:, 3 * C] = -1 if self.version[0] is None else self.version[0]
             if idx is not None:
-                for ch in range(self.C):
+                for ch in range(C):
                     if self.version[ch] is not None:
                         self._count(ch, idx[a2:b, ch])
-            if self.cur_pick is not None:
-                p = self.cur_pick
+            p = self.cur_pick
+            if mid and p is not None and not p["accumulate"] and s + a2 <= mid < s + b:
+                # the codebook in force at the middle of the run: picture it so
+                # far from the kept tail, then keep summing until it is replaced
+                self._tail_counts(p, self.m + b - skip)
+                p["accumulate"] = True
+            elif p is not None and p["accumulate"]:
                 plo, phi = p["range"]
-                k = ((ref[a2:b, 0] - plo) * (200 / (phi - plo))).astype(np.int64)
-                k = k[(k >= 0) & (k < 200)]
-                p["counts"] += np.bincount(k, minlength=200)
+                k = ((rr[:, 0] - plo) * (200 / (phi - plo))).astype(np.int64)
+                p["counts"] += np.bincount(k[(k >= 0) & (k < 200)], minlength=200)
         while ui < len(updates):
             self._apply(updates[ui])
             ui += 1
         self.t = s + frames
-        if skip == frames:
+        if n == 0:
             return None
-        r = ref[skip:]
-        err = x[skip:] - r
-        ov = ((r < lo[skip:]) | (r > hi[skip:])).astype(np.float64)
-        self.peak = max(self.peak, float(np.max(np.abs(err))) if err.size else 0.0)
-        self._frames(np.concatenate([r, err, ov, ver[skip:]], axis=1))
-        self._spectrum(np.concatenate([r, err], axis=1))
-        self.m += r.shape[0]
+        self.peak = max(self.peak, float(np.abs(rows[:, C:2 * C]).max()))
+        self.m += n
+        done = self.frames_in.push(rows)
+        spec = self.spec_in.push(rows[:, :2 * C])
+        # live runs: frame statistics and spectra are summed on the worker, in order
+        run = self.ctx.offload if self.live else (lambda f, *a: f(*a))
+        if done is not None:
+            run(self._frames, done)
+        if spec is not None:
+            run(self._spectrum, spec)
         return None
 
-    def _frames(self, new: np.ndarray) -> None:
+    def _keep_tail(self, r0: np.ndarray) -> None:
+        """The last seconds of channel 0's reference, for the last codebook's picture."""
+        R, n = self.tail.shape[0], r0.shape[0]
+        if n >= R:
+            r0, n = r0[-R:], R
+        at = self.tail_n % R
+        first = min(n, R - at)
+        self.tail[at:at + first] = r0[:first]
+        self.tail[:n - first] = r0[first:]
+        self.tail_n += n
+
+    def _frames(self, buf: np.ndarray) -> None:
         C, F = self.C, self.F
-        buf = self.frames_in.push(new)
-        if buf is None:
-            return
         K = buf.shape[0] // F
         frame_ver = buf[F - 1:K * F:F, 3 * C]   # version in force at each frame's last sample
         body = buf[:K * F]
@@ -307,11 +363,8 @@ class ErrorMeter(Node):
         })
         self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
 
-    def _spectrum(self, new: np.ndarray) -> None:
+    def _spectrum(self, buf: np.ndarray) -> None:
         N = self.N   # Welch segments side by side (no overlap)
-        buf = self.spec_in.push(new)
-        if buf is None:
-            return
         K = buf.shape[0] // N
         view = buf.reshape(K, N, 2 * self.C).transpose(0, 2, 1)  # (K, 2C, N)
         spec = np.abs(np.fft.rfft(view * self.spec_win, axis=-1)) ** 2
@@ -347,6 +400,7 @@ class ErrorMeter(Node):
         for ch in range(self.C):
             self._flush_entropy(ch)
         self._pick_end(self.t)
+        self._picture_last()
         self._write_files()
 
     def _write_files(self) -> None:
@@ -412,7 +466,8 @@ class ErrorMeter(Node):
         for key in ("first", "middle", "last"):
             p = self.picks.get(key)
             if p is not None:
-                picks[key] = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in p.items()}
+                picks[key] = {k: (v.tolist() if isinstance(v, np.ndarray) else v)
+                              for k, v in p.items() if k not in ("accumulate", "from_m")}
         out = {
             "snr_db": _db(sig, noi),
             "segsnr_db": float(self.seg_sum.sum() / seg_n) if seg_n else None,

@@ -48,7 +48,6 @@ from streamq.design.pdfs import PdfModel, pdf_model
 from streamq.design.report import (
     DesignReport,
     evaluate_pdf,
-    index_entropy,
     make_report,
     snr_db,
 )

@@ -139,7 +139,7 @@ def _dp_partition(c, w, count):
         bounds.append(idx)
     bounds.append(0)
     bounds = np.array(bounds[::-1], dtype=np.intp)
-    return bounds, float(prev[k]) if count > 1 else float(prev[k])
+    return bounds, float(prev[k])
 
 
 def optimal_histogram(centers, weights, levels, *, version: int = 0,

@@ -8,7 +8,7 @@ import subprocess
 import numpy as np
 import pytest
 
-from streamq.design import METHODS, Codebook, design, lloyd_max_pdf, pdf_model
+from streamq.design import METHODS, Codebook, design, lloyd_max_pdf
 from streamq.design import command
 from streamq.errors import StreamqError
 

@@ -61,6 +61,7 @@ MAX_BODY = 1 << 26          # bytes of one record body (64 MiB)
 CHUNK_DATA_BYTES = 1 << 20  # the writer's target bytes of index data per chunk
 CHUNK_FRAMES = 65_536       # ... and at most this many frames per chunk
 MAX_METHOD = 1024           # bytes of a codebook's method name
+MAX_LEVEL = 1000.0          # |reconstruction level| (full scale = 1), as for float audio input
 
 _DTYPES = {"uint8": 1, "uint16": 2, "uint32": 4, "uint64": 8}
 _INT64 = (-(1 << 63), (1 << 63) - 1)
@@ -154,6 +155,9 @@ def _check_codebook(cb: CodebookUpdate, channels: int, n_levels: int) -> str | N
         return f"codebook has {thr.shape[0]} thresholds for L={L} levels (expected {L - 1})"
     if not (np.all(np.isfinite(lev)) and np.all(np.isfinite(thr))):
         return "codebook has a non-finite threshold or level"
+    if L and float(np.max(np.abs(lev))) > MAX_LEVEL:
+        return (f"codebook level {float(lev[np.argmax(np.abs(lev))]):.6g} is more than 60 dB "
+                f"above full scale (1.0)")
     if L > 2 and not np.all(np.diff(thr) > 0):
         k = int(np.flatnonzero(~(np.diff(thr) > 0))[0])
         return (f"codebook thresholds are not increasing (threshold {k + 1} = {thr[k + 1]!r} "

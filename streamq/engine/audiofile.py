@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import os
 import re
+import shutil
 import stat
 from pathlib import Path
 from typing import Callable
@@ -159,9 +160,12 @@ class SafeWriter:
         try:
             self._f.write(data)
         except Exception as exc:
+            why = _short(exc)
+            if why.startswith("System error") and _disk_full(self.tmp.parent):
+                why = "No space left on device"  # libsndfile does not say which error
             self.discard()
             raise self.fail(f"{self.path}: write failed after {self.frames} frames "
-                            f"({_short(exc)}); nothing was left under that name") from None
+                            f"({why}); nothing was left under that name") from None
         self.frames += data.shape[0]
 
     def close(self) -> None:
@@ -190,6 +194,13 @@ class SafeWriter:
             self.tmp.unlink()
         except OSError:
             pass
+
+
+def _disk_full(folder: Path) -> bool:
+    try:
+        return shutil.disk_usage(folder).free < (1 << 20)
+    except OSError:
+        return False
 
 
 def _short(exc: BaseException) -> str:

@@ -92,9 +92,15 @@ class RunContext:
     out_dir: Path
     sample_rate: int
     live: bool = False
-    # Called by a node to run heavy work (PDF estimation, codebook design) off
-    # the audio path in live runs; offline it simply calls the function.
+    # Live runs only (None offline, where nodes just call the function):
+    # ``offload(fn, *args) -> Future`` runs heavy work (PDF snapshots, codebook
+    # designs) in a worker *process*, so it never holds the interpreter lock
+    # the audio callback needs; fn must be a module-level function of
+    # picklable arguments. ``background(fn, *args) -> Future`` runs short
+    # work that touches node state (e.g. a meter summing finished frames) on
+    # one worker thread, in submission order.
     offload: Callable[..., Any] | None = None
+    background: Callable[..., Any] | None = None
     options: dict[str, Any] = field(default_factory=dict)
 
     def resolve_path(self, path: str | Path) -> Path:

@@ -51,12 +51,14 @@ def infer_rate(graph: Graph) -> int:
 
 
 def build(graph: Graph, out_dir: Path, *, live: bool = False,
-          offload: Callable[..., Any] | None = None, options: dict | None = None) -> BuiltGraph:
+          offload: Callable[..., Any] | None = None, background: Callable[..., Any] | None = None,
+          options: dict | None = None) -> BuiltGraph:
     """Open every node in order; collect every problem before giving up."""
     label = str(graph.source) if graph.source else "<graph>"
     rate = infer_rate(graph)
     ctx = RunContext(graph_file=graph.source, out_dir=Path(out_dir), sample_rate=rate,
-                     live=live, offload=offload, options=dict(options or {}))
+                     live=live, offload=offload, background=background,
+                     options=dict(options or {}))
     specs: dict[str, StreamSpec | None] = {}
     failed: set[str] = set()
     problems: list[str] = []

@@ -15,7 +15,8 @@ import signal
 import sys
 import threading
 import time
-from concurrent.futures import ThreadPoolExecutor
+import multiprocessing
+from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -43,6 +44,13 @@ def _device(sd, node, direction: str, channels: int):
             raise StreamqError(f"node '{node.id}': no default {direction} device; name one with "
                                f"field 'device' (see 'streamq devices')")
     return idx
+
+
+def _warm_worker() -> None:
+    """Import the design code in the worker process before the stream starts."""
+    import streamq.design  # noqa: F401
+    import streamq.nodes.encoder  # noqa: F401
+    import streamq.nodes.estimator  # noqa: F401
 
 
 class LiveRun:
@@ -158,8 +166,19 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
     sd = import_sounddevice()
     block = int(getattr(args, "block", None) or graph.header.block)
     seconds = getattr(args, "seconds", None)
-    executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamq-design")
-    built = build(graph, out_dir, live=True, offload=executor.submit)
+    # designs and PDF snapshots: a worker process (no contention for the interpreter
+    # lock with the audio callback); short node-bound jobs: one worker thread
+    designer = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"),
+                                   initializer=_warm_worker)
+    designer.submit(_warm_worker).result()   # start it now, not at the first hop
+    executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamq-meter")
+    try:
+        built = build(graph, out_dir, live=True, offload=designer.submit,
+                      background=executor.submit)
+    except BaseException:
+        executor.shutdown(wait=False)
+        designer.shutdown(wait=False, cancel_futures=True)
+        raise
     complete = False
     try:
         rate = built.ctx.sample_rate
@@ -225,8 +244,10 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         for nid in built.graph.order:
             built.graph.nodes[nid].finish()
         complete = not interrupted
+        designer.shutdown(wait=True, cancel_futures=True)
     finally:
         executor.shutdown(wait=False, cancel_futures=True)
+        designer.shutdown(wait=False, cancel_futures=True)
         for nid in built.graph.order:
             try:
                 built.graph.nodes[nid].close(complete)

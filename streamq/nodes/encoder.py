@@ -32,6 +32,42 @@ from streamq.engine.registry import register
 from streamq.nodes import coding
 from streamq.nodes.estimator import js_drift
 
+def drift_decision(snap, ref, threshold: float):
+    """(drift, retrain?) for the drift trigger: Jensen-Shannon divergence between
+    this snapshot and the one the codebook in force was designed on."""
+    if ref is None:
+        return None, True
+    drift = js_drift(ref.centers, ref.counts, snap.centers, snap.counts)
+    return drift, drift > threshold
+
+
+def design_job(snap, init, recipe: dict):
+    """The codebook for one snapshot, on the side-information grid, with its
+    cost in bits; None when the window is empty. A pure function (live runs
+    compute it in a worker process)."""
+    L, opts = recipe["levels"], recipe["opts"]
+    if recipe["design_from"] == "model" and snap.model is not None:
+        m = snap.model
+        model = m["model"] if m["model"] in coding.PARAMETRIC else recipe["model"]
+        cb = coding.model_codebook(recipe["method"], L, model, m["mean"], m["std"], m.get("shape"),
+                                   opts)
+    elif snap.counts.sum() <= 0:
+        return None
+    else:
+        cb = coding.histogram_codebook(recipe["method"], L, snap.centers, snap.counts, init, opts)
+    return coding.finish_levels(cb, recipe["grid_bits"], recipe["standard"])
+
+
+def live_design_job(snap, ref, init, recipe: dict):
+    """Live runs: (drift, design or None), the trigger rule applied in the worker."""
+    if recipe["trigger"] == "drift":
+        drift, go = drift_decision(snap, ref, recipe["threshold"])
+    else:
+        drift, go = (None if ref is None else
+                     js_drift(ref.centers, ref.counts, snap.centers, snap.counts)), True
+    return drift, (design_job(snap, init, recipe) if go else None)
+
+
 METHODS = ("lloyd-max", "optimal", "ecsq", "uniform", "mu-law", "a-law", "g711-mu", "g711-a")
 
 
@@ -178,7 +214,14 @@ class Encoder(Node):
         # live runs: designs go to the worker thread; finished ones apply at the next block
         self.live = bool(ctx.live and ctx.offload is not None) and self.replay is None
         self.jobs: list = []
+        if self.live and c.adapt in ("trailing", "lookahead"):
+            # designs start as soon as the estimator's snapshot is ready
+            specs["pdf"].extra["subscribe"](self._snapshots_ready)
         self.worker_errors: list[str] = []
+        self.recipe = {"method": c.method, "levels": self.L, "design_from": c.design_from,
+                       "model": c.model, "opts": self.opts, "grid_bits": c.grid_bits,
+                       "standard": self.standard, "trigger": c.trigger,
+                       "threshold": c.drift_threshold}
         self.preroll_index = int(first.encode(np.zeros(1))[0])
         self.delay_line = DelayLine(self.delay, self.C)
         self.dtype = index_dtype(self.L)
@@ -252,33 +295,18 @@ class Encoder(Node):
     # -- adaptive designs -----------------------------------------------------
     def _consider(self, snap) -> bool:
         """Whether this snapshot should trigger a redesign (trigger rule)."""
-        ch, t = snap.channel, snap.at_sample
-        ref = self.ref[ch]
-        if self.config.trigger == "drift" or self.live:  # otherwise nobody reads it
-            self.drift[ch] = (js_drift(ref.centers, ref.counts, snap.centers, snap.counts)
-                              if ref is not None else None)
-        if t - self.last_design[ch] < self.min_interval:
+        ch = snap.channel
+        if snap.at_sample - self.last_design[ch] < self.min_interval:
             return False
-        if self.config.trigger == "drift" and ref is not None:
-            return self.drift[ch] > self.config.drift_threshold
-        return True
-
-    def _consider_and_design(self, snap):
-        return self._design(snap) if self._consider(snap) else None
+        if self.config.trigger != "drift":
+            return True
+        drift, go = drift_decision(snap, self.ref[ch], self.config.drift_threshold)
+        self.drift[ch] = drift
+        return go
 
     def _design(self, snap):
-        c = self.config
-        ch = snap.channel
-        init = self.current[ch] if c.warm_start else None
-        if c.design_from == "model" and snap.model is not None:
-            m = snap.model
-            cb = coding.model_codebook(c.method, self.L, m["model"] if m["model"] in coding.PARAMETRIC
-                                       else c.model, m["mean"], m["std"], m.get("shape"), self.opts)
-        elif snap.counts.sum() <= 0:
-            return None
-        else:
-            cb = coding.histogram_codebook(c.method, self.L, snap.centers, snap.counts, init, self.opts)
-        return coding.finish_levels(cb, c.grid_bits, self.standard)
+        init = self.current[snap.channel] if self.config.warm_start else None
+        return design_job(snap, init, self.recipe)
 
     def _encode(self, cb, x: np.ndarray) -> np.ndarray:
         if self.int16:
@@ -357,29 +385,36 @@ class Encoder(Node):
         return Packet(IndexBlock(out, s, self.rate, versions), tuple(events))
 
     def _live_designs(self, s: int, inputs, changes) -> None:
-        """Live runs: apply the designs the worker has finished (at this block's
-        first sample), then hand it the new snapshots. Only reference swaps
-        and list appends happen here: the design itself runs off the audio path."""
+        """Live runs: apply the designs the worker process has finished, at this
+        block's first sample. Only reference swaps happen here; designs were
+        handed to the worker by :meth:`_snapshots_ready`."""
         while self.jobs and self.jobs[0][1].done():
             snap, fut = self.jobs.pop(0)
             exc = fut.exception()
-            if exc is not None or fut.result() is None:
-                if exc is not None:   # keep the last good codebook; say what went wrong
-                    self.worker_errors.append(f"design at sample {snap.at_sample}, channel "
-                                             f"{snap.channel}: {exc}")
+            if exc is not None:   # keep the last good codebook; say what went wrong
+                self.worker_errors.append(f"design at sample {snap.at_sample}, channel "
+                                         f"{snap.channel}: {exc}")
                 continue
-            self._announce(s, snap.channel, *fut.result())
+            drift, done = fut.result()
+            self.drift[snap.channel] = drift
+            if done is None:
+                continue
+            self._announce(s, snap.channel, *done)
             self.ref[snap.channel] = snap
             self.last_design[snap.channel] = s
             changes[snap.channel].append((s, self.current[snap.channel]))
-        if self.config.adapt in ("trailing", "lookahead"):
-            for ev in inputs["pdf"].events:
-                if getattr(ev, "counts", None) is None:
-                    continue
-                if any(j[0].channel == ev.channel for j in self.jobs):
-                    continue   # the worker is behind: skip, the next snapshot is fresher
-                # the drift statistic and the design both run on the worker
-                self.jobs.append((ev, self.ctx.offload(self._consider_and_design, ev)))
+
+    def _snapshots_ready(self, snaps) -> None:
+        """Live runs, on the worker's result thread: hand the new snapshots to the
+        design process (list appends only; the audio callback applies results)."""
+        for ev in snaps:
+            if any(j[0].channel == ev.channel for j in self.jobs):
+                continue   # the worker is behind: skip, the next snapshot is fresher
+            if ev.at_sample - self.last_design[ev.channel] < self.min_interval:
+                continue
+            init = self.current[ev.channel] if self.config.warm_start else None
+            self.jobs.append((ev, self.ctx.offload(live_design_job, ev, self.ref[ev.channel],
+                                                   init, self.recipe)))
 
     def report(self):
         extra = {"worker_errors": len(self.worker_errors),

@@ -155,6 +155,30 @@ def js_drift(c1: np.ndarray, n1: np.ndarray, c2: np.ndarray, n2: np.ndarray, poi
     return float(max(0.0, 0.5 * (kp + kq)))
 
 
+def snapshot_job(t: int, win: np.ndarray, params: dict, last: list) -> list[PdfSnapshot]:
+    """Snapshots of every channel for the window ``win`` ending at sample ``t``.
+
+    A pure function of its arguments, so live runs can compute it in a worker
+    process. ``last`` holds each channel's previous snapshot (for the
+    hop-to-hop drift) or None.
+    """
+    have = win.shape[0]
+    weights = None
+    if params["half_life"]:
+        age = np.arange(have - 1, -1, -1, dtype=np.float64)
+        weights = np.exp2(-age / params["half_life"])
+    out = []
+    for ch in range(win.shape[1]):
+        x = win[:, ch]
+        centers, counts = window_histogram(x, params["bins"], params["span"], weights)
+        stats = window_stats(x, weights)
+        model = fit_model(params["fit"], centers, counts) if params["fit"] != "none" else None
+        prev = last[ch]
+        drift = js_drift(prev.centers, prev.counts, centers, counts) if prev is not None else None
+        out.append(PdfSnapshot(t, ch, t - have, centers, counts, stats, model, drift))
+    return out
+
+
 # -- the node ---------------------------------------------------------------------
 
 class EstimatorConfig(NodeConfig):
@@ -199,6 +223,8 @@ class PdfEstimator(Node):
         self.half_life = (self.config.half_life.samples(rate) if self.config.half_life else None)
         if self.half_life is not None and self.half_life < 1:
             raise self.fail("half_life", "half_life must be at least 1 sample")
+        self.params = {"bins": self.config.bins, "span": self.config.span,
+                       "half_life": self.half_life, "fit": self.config.fit}
         self.buf = np.zeros((self.W, self.C))  # ring of the last W samples
         self.written = 0
         self.pending: list[PdfSnapshot] = []  # snapshots due at the start of the next packet
@@ -206,10 +232,12 @@ class PdfEstimator(Node):
         self.snapshots = 0
         self.live = bool(ctx.live and ctx.offload is not None)
         self.jobs: list = []
+        self.listeners: list = []
         self.worker_errors = 0
         self.skipped = 0
         return StreamSpec("signal", rate, self.C, spec.latency, spec.int_bits, spec.frames,
-                          {**spec.extra, "estimator": {"window": self.W, "hop": self.H,
+                          {**spec.extra, "subscribe": self.subscribe,
+                           "estimator": {"window": self.W, "hop": self.H,
                                                         "bins": self.config.bins,
                                                         "span": self.config.span,
                                                         "fit": self.config.fit}})
@@ -235,27 +263,26 @@ class PdfEstimator(Node):
             return self.buf[end - have:end].copy()
         return np.concatenate([self.buf[self.W - (have - end):], self.buf[:end]])
 
-    def _snapshot(self, t: int, win: np.ndarray | None = None) -> list[PdfSnapshot]:
-        have = min(self.W, t)
-        if win is None:
-            win = self._window(have)
-        weights = None
-        if self.half_life:
-            age = np.arange(have - 1, -1, -1, dtype=np.float64)
-            weights = np.exp2(-age / self.half_life)
-        out = []
-        for ch in range(self.C):
-            x = win[:, ch]
-            centers, counts = window_histogram(x, self.config.bins, self.config.span, weights)
-            stats = window_stats(x, weights)
-            model = fit_model(self.config.fit, centers, counts) if self.config.fit != "none" else None
-            prev = self.last[ch]
-            drift = (js_drift(prev.centers, prev.counts, centers, counts) if prev is not None else None)
-            snap = PdfSnapshot(t, ch, t - have, centers, counts, stats, model, drift)
-            self.last[ch] = snap
-            out.append(snap)
+    def _snapshot(self, t: int) -> list[PdfSnapshot]:
+        snaps = snapshot_job(t, self._window(min(self.W, t)), self.params, self.last)
+        self._took(snaps)
+        return snaps
+
+    def subscribe(self, listener) -> None:
+        """Live runs: call ``listener(snapshots)`` as soon as the worker has them
+        (from the worker's result thread), so a design can start at once instead
+        of waiting for the next audio block."""
+        self.listeners.append(listener)
+
+    def _ready(self, fut) -> None:
+        if fut.exception() is None:
+            for listener in self.listeners:
+                listener(fut.result())
+
+    def _took(self, snaps: list[PdfSnapshot]) -> None:
+        for snap in snaps:
+            self.last[snap.channel] = snap
         self.snapshots += 1
-        return out
 
     def step(self, frames, inputs) -> Packet:
         pkt = inputs["input"]
@@ -266,6 +293,7 @@ class PdfEstimator(Node):
         while self.jobs and self.jobs[0].done():
             fut = self.jobs.pop(0)
             if fut.exception() is None:
+                self._took(fut.result())
                 events.extend(fut.result())
             else:
                 self.worker_errors += 1
@@ -282,7 +310,10 @@ class PdfEstimator(Node):
                 if len(self.jobs) >= 2:
                     self.skipped += 1
                     continue
-                self.jobs.append(self.ctx.offload(self._snapshot, t, self._window(min(self.W, t))))
+                fut = self.ctx.offload(snapshot_job, t, self._window(min(self.W, t)),
+                                       self.params, list(self.last))
+                fut.add_done_callback(self._ready)
+                self.jobs.append(fut)
                 continue
             snaps = self._snapshot(t)
             if t < s + frames:

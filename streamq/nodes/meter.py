@@ -118,7 +118,7 @@ class ErrorMeter(Node):
         self.cur_pick: dict | None = None
         self.tail = np.zeros(1 << 19)   # about 11 s at 48 kHz
         self.tail_n = 0
-        self.live = bool(ctx.live and ctx.offload is not None)
+        self.live = bool(ctx.live and ctx.background is not None)
         return None
 
     # -- codebooks -------------------------------------------------------------
@@ -270,7 +270,7 @@ class ErrorMeter(Node):
         done = self.frames_in.push(rows)
         spec = self.spec_in.push(rows[:, :2 * C])
         # live runs: frame statistics and spectra are summed on the worker, in order
-        run = self.ctx.offload if self.live else (lambda f, *a: f(*a))
+        run = self.ctx.background if self.live else (lambda f, *a: f(*a))
         if done is not None:
             run(self._frames, done)
         if spec is not None:

@@ -53,6 +53,16 @@ def _warm_worker() -> None:
     import streamq.nodes.estimator  # noqa: F401
 
 
+def make_workers() -> tuple[ProcessPoolExecutor, ThreadPoolExecutor]:
+    """The live run's helpers: a started worker process for designs and PDF
+    snapshots (``ctx.offload``) and one thread for short node-bound jobs
+    (``ctx.background``)."""
+    designer = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"),
+                                   initializer=_warm_worker)
+    designer.submit(_warm_worker).result()   # start it now, not at the first hop
+    return designer, ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamq-meter")
+
+
 class LiveRun:
     """The state shared between the audio callback and the main thread."""
 
@@ -168,10 +178,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
     seconds = getattr(args, "seconds", None)
     # designs and PDF snapshots: a worker process (no contention for the interpreter
     # lock with the audio callback); short node-bound jobs: one worker thread
-    designer = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"),
-                                   initializer=_warm_worker)
-    designer.submit(_warm_worker).result()   # start it now, not at the first hop
-    executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamq-meter")
+    designer, executor = make_workers()
     try:
         built = build(graph, out_dir, live=True, offload=designer.submit,
                       background=executor.submit)

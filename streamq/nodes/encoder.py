@@ -413,8 +413,11 @@ class Encoder(Node):
             if ev.at_sample - self.last_design[ev.channel] < self.min_interval:
                 continue
             init = self.current[ev.channel] if self.config.warm_start else None
-            self.jobs.append((ev, self.ctx.offload(live_design_job, ev, self.ref[ev.channel],
-                                                   init, self.recipe)))
+            try:
+                fut = self.ctx.offload(live_design_job, ev, self.ref[ev.channel], init, self.recipe)
+            except RuntimeError:   # the run is ending: the worker takes no more jobs
+                return
+            self.jobs.append((ev, fut))
 
     def report(self):
         extra = {"worker_errors": len(self.worker_errors),

@@ -10,7 +10,7 @@ is the baseline; the ratio p99 / period is printed with PASS or MISS.
 Two measurements:
 
 1. Offline, the cleaner number. The graph is built as the live runner builds
-   it (live nodes, designs offloaded to one worker thread, the same thread
+   it (live nodes, designs offloaded to the worker process, the same thread
    switch interval) and the graph step (``streamq.engine.scheduler._step_all``)
    is called on 128-frame blocks of an invented programme, paced by a clock
    at the block rate (so the design worker gets the idle time it gets in a
@@ -42,7 +42,8 @@ import os
 import sys
 import tempfile
 import time
-from concurrent.futures import ThreadPoolExecutor
+
+from streamq.live.runner import make_workers
 from pathlib import Path
 
 import numpy as np
@@ -154,9 +155,9 @@ def time_steps(adaptive: bool, x: np.ndarray, workdir: Path) -> dict:
     """Build the live graph with offloaded designs and time each 128-frame step."""
     from streamq.engine.graph import parse_graph
     from streamq.engine.scheduler import _step_all, build
-    executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="bench-design")
+    designer, executor = make_workers()   # as the live runner has them
     graph = parse_graph(graph_text(adaptive, None), workdir / "bench.toml")
-    built = build(graph, workdir, live=True, offload=executor.submit)
+    built = build(graph, workdir, live=True, offload=designer.submit, background=executor.submit)
     inp = built.graph.nodes["mic"]
     steps = x.shape[0] // BLOCK
     wall = np.empty(steps)
@@ -179,6 +180,7 @@ def time_steps(adaptive: bool, x: np.ndarray, workdir: Path) -> dict:
     finally:
         sys.setswitchinterval(old)
         executor.shutdown(wait=True)
+        designer.shutdown(wait=True)
         for node in built.graph.nodes.values():
             node.close(True)
     updates = built.graph.nodes["noise"].report()["codebook_updates"]
@@ -191,9 +193,9 @@ def node_breakdown(x: np.ndarray, workdir: Path) -> None:
     """Thread CPU time of each node's step in the adaptive graph (not paced)."""
     from streamq.engine.graph import parse_graph
     from streamq.engine.scheduler import build
-    executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="bench-design")
+    designer, executor = make_workers()
     built = build(parse_graph(graph_text(True, None), workdir / "bench.toml"), workdir,
-                  live=True, offload=executor.submit)
+                  live=True, offload=designer.submit, background=executor.submit)
     nodes, order = built.graph.nodes, built.graph.order
     per = {nid: [] for nid in order}
     old = sys.getswitchinterval()
@@ -211,6 +213,7 @@ def node_breakdown(x: np.ndarray, workdir: Path) -> None:
     finally:
         sys.setswitchinterval(old)
         executor.shutdown(wait=True)
+        designer.shutdown(wait=True)
         for node in nodes.values():
             node.close(True)
     print("  per node, thread CPU (adaptive):")

@@ -416,6 +416,9 @@ def test_toml_syntax_errors_report_line_and_column(tmp_path_factory, capsys, at,
     graph = tmp_path_factory.mktemp("g") / "g.toml"
     graph.write_text(text)
     (line,) = assert_clean(run_cli(capsys, "run", graph, "--quiet"), str(graph), "TOML syntax error")
+    if where is None:  # an unclosed array at the very end: tomllib says "at end of document"
+        assert "end of document" in line, line
+        return
     assert f"line {where.group(1)}, column {where.group(2)}" in line
     assert int(where.group(1)) >= at + 1  # at or after the broken line, never before it
 

@@ -216,7 +216,7 @@ class Encoder(Node):
         self.jobs: list = []
         if self.live and c.adapt in ("trailing", "lookahead"):
             # designs start as soon as the estimator's snapshot is ready
-            specs["pdf"].extra["subscribe"](self._snapshots_ready)
+            specs["pdf"].extra["subscribe"](self)
         self.worker_errors: list[str] = []
         self.recipe = {"method": c.method, "levels": self.L, "design_from": c.design_from,
                        "model": c.model, "opts": self.opts, "grid_bits": c.grid_bits,
@@ -385,39 +385,39 @@ class Encoder(Node):
         return Packet(IndexBlock(out, s, self.rate, versions), tuple(events))
 
     def _live_designs(self, s: int, inputs, changes) -> None:
-        """Live runs: apply the designs the worker process has finished, at this
-        block's first sample. Only reference swaps happen here; designs were
-        handed to the worker by :meth:`_snapshots_ready`."""
-        while self.jobs and self.jobs[0][1].done():
-            snap, fut = self.jobs.pop(0)
-            exc = fut.exception()
-            if exc is not None:   # keep the last good codebook; say what went wrong
-                self.worker_errors.append(f"design at sample {snap.at_sample}, channel "
-                                         f"{snap.channel}: {exc}")
-                continue
-            drift, done = fut.result()
-            self.drift[snap.channel] = drift
+        """Live runs: apply the designs the worker process has delivered, at this
+        block's first sample (only reference swaps happen here)."""
+        while self.jobs and self.jobs[0][1] is not None:
+            ch, snap, (drift, done) = self.jobs.pop(0)
+            self.drift[ch] = drift
             if done is None:
                 continue
-            self._announce(s, snap.channel, *done)
-            self.ref[snap.channel] = snap
-            self.last_design[snap.channel] = s
-            changes[snap.channel].append((s, self.current[snap.channel]))
+            self._announce(s, ch, *done)
+            self.ref[ch] = snap
+            self.last_design[ch] = s
+            changes[ch].append((s, self.current[ch]))
 
-    def _snapshots_ready(self, snaps) -> None:
-        """Live runs, on the worker's result thread: hand the new snapshots to the
-        design process (list appends only; the audio callback applies results)."""
-        for ev in snaps:
-            if any(j[0].channel == ev.channel for j in self.jobs):
+    def requests(self, t: int) -> list:
+        """Live runs (audio thread, at a hop of the estimator): the designs to run
+        with the snapshots of sample ``t``, as (channel, job, args)."""
+        out = []
+        for ch in range(self.C):
+            if any(j[0] == ch for j in self.jobs):
                 continue   # the worker is behind: skip, the next snapshot is fresher
-            if ev.at_sample - self.last_design[ev.channel] < self.min_interval:
+            if t - self.last_design[ch] < self.min_interval:
                 continue
-            init = self.current[ev.channel] if self.config.warm_start else None
-            try:
-                fut = self.ctx.offload(live_design_job, ev, self.ref[ev.channel], init, self.recipe)
-            except RuntimeError:   # the run is ending: the worker takes no more jobs
-                return
-            self.jobs.append((ev, fut))
+            init = self.current[ch] if self.config.warm_start else None
+            out.append((ch, live_design_job, (self.ref[ch], init, self.recipe)))
+            self.jobs.append((ch, None, None))   # placeholder until delivered
+        return out
+
+    def deliver(self, snaps, results) -> None:
+        """Live runs (worker result thread): designs ready to apply at the next block."""
+        for ch, res in results:
+            for i, job in enumerate(self.jobs):
+                if job[0] == ch and job[1] is None:
+                    self.jobs[i] = (ch, snaps[ch], res)
+                    break
 
     def report(self):
         extra = {"worker_errors": len(self.worker_errors),

@@ -179,6 +179,15 @@ def snapshot_job(t: int, win: np.ndarray, params: dict, last: list) -> list[PdfS
     return out
 
 
+def hop_job(t: int, win: np.ndarray, params: dict, last: list, requests: list) -> tuple:
+    """Live runs, in the worker process: the snapshots of one hop, then the
+    designs the subscribed encoders asked for (``requests``: per encoder, a
+    list of ``(channel, job, args)``; ``job(snapshot, *args)``)."""
+    snaps = snapshot_job(t, win, params, last)
+    results = [[(ch, job(snaps[ch], *args)) for ch, job, args in req] for req in requests]
+    return snaps, results
+
+
 # -- the node ---------------------------------------------------------------------
 
 class EstimatorConfig(NodeConfig):
@@ -268,16 +277,19 @@ class PdfEstimator(Node):
         self._took(snaps)
         return snaps
 
-    def subscribe(self, listener) -> None:
-        """Live runs: call ``listener(snapshots)`` as soon as the worker has them
-        (from the worker's result thread), so a design can start at once instead
-        of waiting for the next audio block."""
-        self.listeners.append(listener)
+    def subscribe(self, hook) -> None:
+        """Live runs: an encoder designing from these snapshots. At each hop
+        ``hook.requests(t)`` (audio thread, cheap) says which designs to run;
+        the worker process computes the snapshots and those designs in one job,
+        and ``hook.deliver(snapshots, results)`` gets them from the worker's
+        result thread: one round trip per hop, no audio block waited for."""
+        self.listeners.append(hook)
 
     def _ready(self, fut) -> None:
         if fut.exception() is None:
-            for listener in self.listeners:
-                listener(fut.result())
+            snaps, results = fut.result()
+            for hook, res in zip(self.listeners, results):
+                hook.deliver(snaps, res)
 
     def _took(self, snaps: list[PdfSnapshot]) -> None:
         for snap in snaps:
@@ -293,8 +305,9 @@ class PdfEstimator(Node):
         while self.jobs and self.jobs[0].done():
             fut = self.jobs.pop(0)
             if fut.exception() is None:
-                self._took(fut.result())
-                events.extend(fut.result())
+                snaps = fut.result()[0]
+                self._took(snaps)
+                events.extend(snaps)
             else:
                 self.worker_errors += 1
         # hop boundaries t with s < t <= s + frames, each using data up to t
@@ -310,8 +323,8 @@ class PdfEstimator(Node):
                 if len(self.jobs) >= 2:
                     self.skipped += 1
                     continue
-                fut = self.ctx.offload(snapshot_job, t, self._window(min(self.W, t)),
-                                       self.params, list(self.last))
+                fut = self.ctx.offload(hop_job, t, self._window(min(self.W, t)), self.params,
+                                       list(self.last), [h.requests(t) for h in self.listeners])
                 fut.add_done_callback(self._ready)
                 self.jobs.append(fut)
                 continue

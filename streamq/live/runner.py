@@ -11,6 +11,7 @@ CodebookUpdate, so an offline replay with the recorded events is bit-exact.
 
 from __future__ import annotations
 
+import os
 import signal
 import sys
 import threading
@@ -28,6 +29,7 @@ from streamq.errors import StreamqError
 STATUS_FLAGS = ("input_underflow", "input_overflow", "output_underflow", "output_overflow",
                 "priming_output")
 TIMES = 1 << 16  # callback work times kept (a ring: constant memory)
+STALL_SECONDS = 3.0  # no audio callback for this long: the device or server is gone
 
 
 def _device(sd, node, direction: str, channels: int):
@@ -214,6 +216,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         sys.setswitchinterval(0.0005)  # the design worker must not hold the GIL for long
         meter = _terminal_meter(args)
         interrupted = False
+        stalled = False
         old_term = None
 
         def on_term(signum, frame):
@@ -224,15 +227,29 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         except ValueError:  # not the main thread
             pass
         try:
-            with stream:
-                try:
-                    while not run.done.wait(0.25):
-                        if not stream.active:
-                            break
-                        if meter:
-                            meter.update(_gather(run))
-                except KeyboardInterrupt:
-                    interrupted = True
+            stream.start()
+            try:
+                seen, since = run.calls, time.monotonic()
+                while not run.done.wait(0.25):
+                    if not stream.active:
+                        # the stream ended without our say: the device or server went away
+                        stalled = not run.done.is_set()
+                        break
+                    if meter:
+                        meter.update(_gather(run))
+                    if run.calls != seen:
+                        seen, since = run.calls, time.monotonic()
+                    elif time.monotonic() - since > STALL_SECONDS:
+                        # the device or audio server stopped calling us (e.g. the
+                        # server died): stop, keep what was recorded, say so
+                        stalled = True
+                        break
+            except KeyboardInterrupt:
+                interrupted = True
+            if not stalled:
+                # (with a dead server PortAudio would wait for a callback forever)
+                stream.stop()
+                stream.close()
         finally:
             sys.setswitchinterval(old_switch)
             if old_term is not None:
@@ -245,6 +262,10 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 raise err
             raise StreamqError(f"live run stopped at sample {run.pos}: "
                                f"{type(err).__name__}: {err}") from None
+        if stalled:
+            print(f"streamq: the audio stopped after {run.pos / rate:.2f} s (did the audio "
+                  f"server or device go away?); the outputs so far are kept", file=sys.stderr)
+            interrupted = True
         # let the worker finish what the callback handed it (meters sum their frames
         # there in live runs), then flush the nodes
         executor.shutdown(wait=True)
@@ -269,7 +290,8 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
     # still closed and valid); one that reached --seconds or its source's end is complete
     report = make_report(built, complete=not interrupted, samples=run.pos,
                          seconds=run.pos / rate, extra={"live": live})
-    report["stopped_by"] = "interrupt" if interrupted else ("seconds" if seconds else "end")
+    report["stopped_by"] = ("stalled" if stalled else "interrupt" if interrupted
+                            else "seconds" if seconds else "end")
     write_report(out_dir, report)
     _after(out_dir, report, args)
     t = live["callback_ms"]
@@ -278,6 +300,11 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
     for nid, m in report["meters"].items():
         print(f"  {nid}: SNR {m.get('snr_db') or float('nan'):.2f} dB, segmental SNR "
               f"{m.get('segsnr_db') or float('nan'):.2f} dB, {m.get('bits_per_sample') or 0:.3f} bits/sample")
+    if stalled:
+        # PortAudio cannot be shut down without its server; everything is written
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(2)
     return 130 if interrupted else 0
 
 

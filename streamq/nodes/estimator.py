@@ -123,7 +123,9 @@ def fit_model(name: str, centers: np.ndarray, counts: np.ndarray) -> dict[str, f
         mlog = float(np.dot(ww, np.log(dd)))
         # two-sided gamma p(x) ~ |x|^(a-1) exp(-|x|/theta): ML shape solves
         # log(a) - digamma(a) = log(mean|x|) - mean(log|x|)
-        s = max(np.log(mabs) - mlog, 1e-9)
+        # log(a) - digamma(a) falls from ~1/a at 0 to ~1/(2a) at infinity: clamp the
+        # target into what the bracket can reach (a constant window has s = 0)
+        s = min(max(np.log(mabs) - mlog, 5.1e-5), 9.0e3) if mabs > 0 else 1.0
         a = optimize.brentq(lambda a: np.log(a) - special.digamma(a) - s, 1e-4, 1e4)
         theta = mabs / a
         out["shape"] = float(a)

@@ -8,7 +8,6 @@ blocks. Noise is made in fixed chunks, each seeded from ``(seed, chunk)``.
 from __future__ import annotations
 
 import numpy as np
-from scipy import signal as sps
 
 CHUNK = 8192
 SCENES = ("tone", "noise", "drift")
@@ -78,6 +77,8 @@ def drift_scene(seed: int, channel: int, start: int, stop: int, rate: int, total
         up = np.clip((n - center_lo) / fade + 0.5, 0.0, 1.0) if center_lo > 0 else np.ones(len(n))
         down = np.clip((center_hi - n) / fade + 0.5, 0.0, 1.0) if center_hi < total else np.ones(len(n))
         return np.minimum(up, down)
+
+    from scipy import signal as sps  # here, not at import: batch workers never need it
 
     # Part 1: room tone: filtered hiss plus 50 Hz hum and its 3rd harmonic.
     lp = sps.firwin(31, 0.25)

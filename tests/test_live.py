@@ -569,3 +569,33 @@ def test_live_meter_logs_sparse_lines_when_forced_off_a_terminal():
     lines = buf.getvalue().splitlines()
     assert len(lines) == 1 and "\x1b" not in lines[0]
     assert "live 00:00.0" in lines[0] and "SNR  12.00 dB" in lines[0]
+
+
+@LIVE
+def test_worker_failure_keeps_the_audio_flowing(jack_server, tmp_path):
+    """Half a second of NaN from the input (a broken driver) makes that hop's job fail
+    in the worker process (the design refuses a non-finite histogram): the audio goes
+    on with the codebooks in force, designs resume afterwards, and the failure is
+    reported in one line and in report.json."""
+    audio = programme(12)
+    audio[3 * RATE:int(3.5 * RATE)] = np.nan
+    graph = write(tmp_path / "g.toml", LIVE_GRAPH)
+    out = tmp_path / "out"
+    res, rec, _player = play_through(jack_server, audio,
+                                     ["run", graph, "--out", out, "--seconds", 8, "--quiet"],
+                                     record=2, timeout=90)
+    assert res.returncode == 0, res.stderr[-3000:]
+    assert "Traceback" not in res.stderr
+    assert "worker job(s) failed" in res.stderr
+    report = json.loads((out / "report.json").read_text())
+    assert report["samples"] == 8 * RATE
+    assert report["nodes"]["stats"]["worker_errors"] >= 1
+    enc = report["nodes"]["enc"]
+    assert enc["worker_errors"] >= 1 and enc["worker_error"]
+    # designs resumed after the broken half second: codebooks still changed near the end
+    from streamq.engine.indexio import IndexReader
+    with IndexReader(out / "codes.sqi") as reader:
+        late = [u.at_sample for pkt in reader for u in pkt.events if u.at_sample > 5 * RATE]
+    assert len(late) >= 10
+    # and the monitor never sent a non-finite sample to the device
+    assert np.isfinite(rec).all()

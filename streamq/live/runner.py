@@ -294,6 +294,12 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                             else "seconds" if seconds else "end")
     write_report(out_dir, report)
     _after(out_dir, report, args)
+    failures = [(nid, r["worker_error"]) for nid, r in report.get("nodes", {}).items()
+                if isinstance(r, dict) and r.get("worker_error")]
+    if failures:
+        nid, msg = failures[-1]
+        print(f"streamq: warning: {live['worker_errors']} worker job(s) failed (last, node "
+              f"'{nid}': {msg}); the audio went on with the codebooks in force", file=sys.stderr)
     t = live["callback_ms"]
     print(f"{graph.name}: live run of {run.pos / rate:.1f} s, {run.xruns} xruns, callback "
           f"p99 {t.get('p99', 0):.3f} ms of a {live['block_ms']:.2f} ms block; output in {out_dir}/")

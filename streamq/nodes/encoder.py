@@ -411,6 +411,12 @@ class Encoder(Node):
             self.jobs.append((ch, None, None))   # placeholder until delivered
         return out
 
+    def failed(self, exc: BaseException) -> None:
+        """Live runs (worker result thread): the hop's job failed. Keep the codebooks
+        in force, drop the placeholders, and say what went wrong."""
+        self.worker_errors.append(f"{type(exc).__name__}: {exc}")
+        self.jobs[:] = [j for j in self.jobs if j[1] is not None]
+
     def deliver(self, snaps, results) -> None:
         """Live runs (worker result thread): designs ready to apply at the next block."""
         for ch, res in results:

@@ -288,10 +288,14 @@ class PdfEstimator(Node):
         self.listeners.append(hook)
 
     def _ready(self, fut) -> None:
-        if fut.exception() is None:
+        exc = fut.exception()
+        if exc is None:
             snaps, results = fut.result()
             for hook, res in zip(self.listeners, results):
                 hook.deliver(snaps, res)
+        else:   # the audio goes on with the codebooks in force; the failure is reported
+            for hook in self.listeners:
+                hook.failed(exc)
 
     def _took(self, snaps: list[PdfSnapshot]) -> None:
         for snap in snaps:
@@ -306,12 +310,14 @@ class PdfEstimator(Node):
         self.pending = []
         while self.jobs and self.jobs[0].done():
             fut = self.jobs.pop(0)
-            if fut.exception() is None:
+            exc = fut.exception()
+            if exc is None:
                 snaps = fut.result()[0]
                 self._took(snaps)
                 events.extend(snaps)
             else:
                 self.worker_errors += 1
+                self.worker_error = f"{type(exc).__name__}: {exc}"
         # hop boundaries t with s < t <= s + frames, each using data up to t
         first = (s // self.H + 1) * self.H
         pos = 0
@@ -341,7 +347,8 @@ class PdfEstimator(Node):
 
     def report(self):
         return {"snapshots": self.snapshots, "window_samples": self.W, "hop_samples": self.H,
-                "worker_errors": self.worker_errors, "hops_skipped": self.skipped}
+                "worker_errors": self.worker_errors, "hops_skipped": self.skipped,
+                **({"worker_error": self.worker_error} if self.worker_errors else {})}
 
     def get_state(self):
         return {"buf": self.buf.copy(), "written": self.written, "pending": list(self.pending),

@@ -131,7 +131,7 @@ class LiveOutput(Node):
             self.gain = self.target if abs(g1t - g0 - step_db) < 1e-9 else float(ramp[-1])
             y = x * ramp[:, None]
         # limiter: instant attack per block, slow release, hard ceiling as a last guard
-        peak = float(np.max(np.abs(y))) if y.size else 0.0
+        peak = float(np.nanmax(np.abs(y))) if y.size and not np.isnan(y).all() else 0.0
         need = self.ceiling / peak if peak > self.ceiling else 1.0
         new = min(need, self.limit_gain * (self.release ** frames))
         new = min(new, 1.0)
@@ -140,6 +140,7 @@ class LiveOutput(Node):
         lg = np.linspace(self.limit_gain, new, frames + 1)[1:] if new > self.limit_gain else new
         self.limit_gain = new
         y = y * (lg[:, None] if isinstance(lg, np.ndarray) else lg)
+        np.nan_to_num(y, copy=False, nan=0.0, posinf=0.0, neginf=0.0)  # never NaN to a speaker
         np.clip(y, -self.ceiling, self.ceiling, out=y)
         self.peak_out = max(self.peak_out, float(np.max(np.abs(y))) if y.size else 0.0)
         self.block = y

@@ -100,7 +100,8 @@ class LiveOutput(Node):
                 raise self.fail("reference", "the reference is later than the input; swap them")
             self.delay = DelayLine(d, self.C)
         self.rate = spec.rate
-        self.gain = _db(min(self.START_DB, self.config.gain_db) + self.config.makeup_db)
+        # start quiet whatever the make-up gain: -40 dB at most, then ramp up
+        self.gain = _db(min(self.START_DB, self.config.gain_db + self.config.makeup_db))
         self.target = _db(self.config.gain_db + self.config.makeup_db)
         # ramp speed: the fade-in's 40 dB (or less) in `fade_in`; later changes use the same rate
         fade = max(1, self.config.fade_in.samples(self.rate))

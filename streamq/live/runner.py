@@ -16,6 +16,7 @@ import signal
 import sys
 import threading
 import time
+import gc
 import multiprocessing
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from pathlib import Path
@@ -213,7 +214,11 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                                f"{str(exc).splitlines()[0]} (choose a supported sample_rate or "
                                f"device; see `streamq devices`)") from None
         old_switch = sys.getswitchinterval()
-        sys.setswitchinterval(0.0005)  # the design worker must not hold the GIL for long
+        sys.setswitchinterval(0.0005)  # the background threads must not hold the GIL for long
+        # a full garbage collection of everything loaded so far could take milliseconds inside
+        # the audio callback: set those objects aside (young objects are still collected)
+        gc.collect()
+        gc.freeze()
         meter = _terminal_meter(args)
         interrupted = False
         stalled = False
@@ -252,6 +257,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 stream.close()
         finally:
             sys.setswitchinterval(old_switch)
+            gc.unfreeze()
             if old_term is not None:
                 signal.signal(signal.SIGTERM, old_term)
             if meter:

@@ -289,9 +289,9 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 pass
     live = {"block": block, "block_ms": 1000.0 * block / rate, "xruns": run.xruns,
             "status": run.status, "callback_ms": run.timing(), "callbacks": run.calls,
-            "worker_errors": sum(getattr(n, "worker_errors", 0) if isinstance(
-                getattr(n, "worker_errors", 0), int) else len(n.worker_errors)
-                for n in built.graph.nodes.values())}
+            # every worker job is one estimator hop (snapshot and designs together)
+            "worker_errors": sum(n.worker_errors for n in built.graph.nodes.values()
+                                 if n.kind == "pdf-estimator")}
     # as offline: a run stopped by Ctrl-C/SIGTERM says "complete": false (its outputs are
     # still closed and valid); one that reached --seconds or its source's end is complete
     report = make_report(built, complete=not interrupted, samples=run.pos,

@@ -94,7 +94,6 @@ class ErrorMeter(Node):
         self.seg_sum, self.seg_n = z.copy(), z.copy()
         self.peak = 0.0
         self.frames_in = FrameCollector(self.F, 3 * C + 1)
-        self.frames_done = 0
         # series
         self.rows: list[dict] = []
         self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
@@ -331,7 +330,6 @@ class ErrorMeter(Node):
             k += full * S
         if k < K:                                     # start the next row
             self._win_add(np.add.reduceat(per[k:], [0], axis=0)[0], frame_ver[K - 1], K - k)
-        self.frames_done += K
 
     def _win_add(self, vec: np.ndarray, version: float, frames: int) -> None:
         w = self.win

@@ -19,7 +19,6 @@ import soundfile as sf
 from live_util import JackServer, jack_server, live_problem  # noqa: F401  (fixture)
 from robust.util import leftovers
 
-import os
 
 # The first version hung when JACK died (PortAudio waited for a callback that never
 # came); the live runner now notices a stalled stream and stops with a message.

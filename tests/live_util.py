@@ -17,7 +17,6 @@ pytest fixture ``jack_server`` wraps :class:`JackServer`.
 
 from __future__ import annotations
 
-import itertools
 import os
 import re
 import shutil
@@ -36,7 +35,13 @@ REPO = Path(__file__).resolve().parents[1]
 RATE = 48_000
 PERIOD = 128
 
-_counter = itertools.count(1)
+# Server names come from a small fixed pool.  jackd keeps one slot per server name
+# in a shared registry (eight slots); a killed server leaves its slot behind, and
+# only a later server of the *same* name reclaims it.  Unique names per run would
+# fill the registry on a machine that runs the suite often ("Too many servers
+# already active"), so names are reused.
+NAME_POOL = tuple(f"streamq-test-{k}" for k in range(6))
+SHM = Path("/dev/shm")
 # PortAudio's JACK client is called "PortAudio" ("PortAudio-01" ... when several run);
 # its ports are in_0, in_1 ... and out_0, out_1 ...
 PA_INPUT = re.compile(r"^PortAudio[^:]*:in_(\d+)$")
@@ -83,7 +88,7 @@ class JackServer:
     """
 
     def __init__(self, rate: int = RATE, period: int = PERIOD, channels: int = 2):
-        self.name = f"streamq-test-{os.getpid()}-{next(_counter)}"
+        self.name = _free_name()
         self.rate, self.period, self.channels = rate, period, channels
         self.proc: subprocess.Popen | None = None
         self.log_path = Path(tempfile.gettempdir()) / f"{self.name}.log"
@@ -91,6 +96,7 @@ class JackServer:
 
     # -- life cycle ------------------------------------------------------------
     def start(self, timeout: float = 15.0) -> "JackServer":
+        _clear_stale_registry()
         env = dict(os.environ, JACK_NO_AUDIO_RESERVATION="1")
         env.pop("JACK_DEFAULT_SERVER", None)
         self._log = open(self.log_path, "wb")
@@ -120,6 +126,7 @@ class JackServer:
                 self.proc.kill()
                 self.proc.wait(timeout=5)
         self.proc = None
+        _remove_server_files(self.name)
         if self._log is not None:
             self._log.close()
             self._log = None
@@ -159,6 +166,58 @@ class JackServer:
         env["JACK_NO_AUDIO_RESERVATION"] = "1"
         env.update(extra)
         return env
+
+
+def _running_jack_servers() -> list[str]:
+    """Names of the ``jackd`` servers running on this machine (any user), read
+    from /proc; a server started without ``-n`` is called "default"."""
+    names = []
+    for cmdline in Path("/proc").glob("[0-9]*/cmdline"):
+        try:
+            argv = cmdline.read_bytes().split(b"\0")
+        except OSError:
+            continue
+        if not argv or Path(argv[0].decode(errors="replace")).name not in ("jackd", "jackdmp"):
+            continue
+        args = [a.decode(errors="replace") for a in argv]
+        name = "default"
+        for i, arg in enumerate(args[:-1]):
+            if arg in ("-n", "--name"):
+                name = args[i + 1]
+        names.append(name)
+    return names
+
+
+def _free_name() -> str:
+    running = set(_running_jack_servers())
+    for name in NAME_POOL:
+        if name not in running:
+            return name
+    raise RuntimeError(f"all test server names are in use ({', '.join(NAME_POOL)})")
+
+
+def _remove_server_files(name: str) -> None:
+    """Remove what a stopped (or killed) server of this name left in /dev/shm."""
+    if name in _running_jack_servers():
+        return
+    for path in list(SHM.glob(f"jack_{name}_*")) + list(SHM.glob(f"jack_sem.*_{name}_*")):
+        path.unlink(missing_ok=True)
+
+
+def _clear_stale_registry() -> None:
+    """With no JACK server running anywhere on the machine, every entry of jackd's
+    shared registry is left over from a killed server; remove the registry and the
+    segments so that a new server finds free slots."""
+    if _running_jack_servers() or not SHM.is_dir():
+        return
+    for path in SHM.glob("jack*"):
+        try:
+            if path.is_dir():
+                shutil.rmtree(path, ignore_errors=True)
+            else:
+                path.unlink(missing_ok=True)
+        except OSError:
+            pass
 
 
 # -- the player ----------------------------------------------------------------------

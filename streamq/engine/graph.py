@@ -264,8 +264,16 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
                     loc = loc[1:]
                 if loc and loc[0] in wrong:  # said above
                     continue
-                fld = ".".join(loc) or "?"
+                fld = ".".join(loc)
                 msg = err["msg"]
+                if not fld:   # a check across fields: it names its field as "field: ..."
+                    msg = msg.removeprefix("Value error, ")
+                    head, _, rest = msg.partition(": ")
+                    if rest and head in kinds[use].Config.model_fields:
+                        fld, msg = head, rest
+                    else:
+                        problems.append(f"{where}: {msg}")
+                        continue
                 if err["type"] == "extra_forbidden":
                     msg = f"unknown field for kind '{use}' (see `streamq nodes`)"
                 elif err["type"] == "missing":
@@ -279,7 +287,7 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
         for fld, ref in node.upstream().items():
             if ref not in all_ids:
                 problems.append(f"{label}: node '{nid}', field '{fld}': no node named '{ref}'")
-            elif ref in nodes and nodes[ref].role == "sink":
+            elif ref in nodes and nodes[ref].role in ("sink", "meter"):
                 problems.append(f"{label}: node '{nid}', field '{fld}': node '{ref}' "
                                 f"({nodes[ref].kind}) has no output to read")
         for fld in node.inputs:

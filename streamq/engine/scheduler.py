@@ -73,6 +73,12 @@ def build(graph: Graph, out_dir: Path, *, live: bool = False,
             failed.add(nid)
             continue
         node.ctx = ctx
+        silent = [f for f, ref in ups.items() if specs[ref] is None]
+        if silent:   # a node without an output (a sink or meter kind from a plugin)
+            problems.append(f"{label}: node '{nid}', field '{silent[0]}': node "
+                            f"'{ups[silent[0]]}' has no output to read")
+            failed.add(nid)
+            continue
         try:
             spec = node.open({f: specs[ref] for f, ref in ups.items()}, ctx)
         except StreamqError as exc:

@@ -464,6 +464,9 @@ def test_deep_toml_nesting(tmp_path, capsys):
     ({"enc": {"bits": True}}, ["node 'enc', field 'bits'", "true"]),
     ({"dec": {"input": "dec"}}, ["node 'dec', field 'input'", "cycle"]),
     ({"stats": {"window": "-3 s"}}, ["node 'stats', field 'window'"]),
+    # a meter has no output: reading it is a wiring error, not a crash (found by the fuzzer)
+    ({"idx": {"input": "noise"}}, ["node 'idx', field 'input'", "no output"]),
+    ({"enc": {"apply_after": "10 ms", "adapt": "fixed"}}, ["node 'enc', field 'apply_after'"]),
 ])
 def test_subprocess_sees_one_line(tmp_path, change, expect):
     raw = copy.deepcopy(BASE)

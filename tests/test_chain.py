@@ -154,6 +154,8 @@ MODES = {
     "trailing": 'pdf = "stats"\nmethod = "lloyd-max"\nbits = 3\nadapt = "trailing"',
     "trailing-drift": 'pdf = "stats"\nmethod = "lloyd-max"\nbits = 3\nadapt = "trailing"\n'
                       'trigger = "drift"\ndrift_threshold = 0.02\nmin_interval = "20 ms"',
+    "trailing-apply-after": 'pdf = "stats"\nmethod = "lloyd-max"\nbits = 3\nadapt = "trailing"\n'
+                            'apply_after = "7 ms"',
     "lookahead": 'pdf = "stats"\nmethod = "lloyd-max"\nbits = 3\nadapt = "lookahead"',
     "backward": 'method = "lloyd-max"\nbits = 3\nadapt = "backward"\nwindow = "40 ms"\nhop = "10 ms"',
     "ecsq": 'pdf = "stats"\nmethod = "ecsq"\nbits = 4\nentropy = 2.5\nadapt = "trailing"',
@@ -183,6 +185,36 @@ def test_block_size_invariance_every_mode(tmp_path, mode):
     assert all(r == reports[0] for r in reports[1:])
     assert all(d == decoded[0] for d in decoded[1:])
     assert all(i == indices[0] for i in indices[1:])
+
+
+def _announcements(path):
+    from streamq.engine.indexio import IndexReader
+    reader = IndexReader(path)
+    try:
+        return [u for pkt in reader for u in pkt.events]
+    finally:
+        reader.close()
+
+
+def test_apply_after_delays_each_codebook_by_exactly_that(tmp_path):
+    """A design from the window ending at t applies from t + apply_after: the same
+    codebooks as with apply_after = 0, each announced exactly that much later
+    (the first codebooks, in force from sample 0, stay put)."""
+    scene = 'use = "test-signal"\nscene = "drift"\nseconds = 1.5\nchannels = 2'
+    enc = MODES["trailing"]
+    runs = {}
+    for name, extra in (("now", ""), ("later", '\napply_after = "30 ms"')):
+        out = tmp_path / name
+        runs[name] = run_toml(chain(scene, enc + extra), out)
+        runs[name + "-events"] = _announcements(out / "indices.sqi")
+    now, later = runs["now-events"], runs["later-events"]
+    shift = 30 * RATE // 1000
+    assert len(now) == len(later) > 2 * 10
+    for a, b in zip(now, later):
+        assert (a.channel, a.version) == (b.channel, b.version)
+        assert b.at_sample == (a.at_sample + shift if a.at_sample else 0)
+        np.testing.assert_array_equal(a.levels, b.levels)
+    assert runs["now"]["meters"]["noise"]["snr_db"] != runs["later"]["meters"]["noise"]["snr_db"]
 
 
 def test_lookahead_latency_declared_and_compensated(tmp_path):

@@ -163,3 +163,40 @@ class StreamSpec:
     int_bits: int | None = None
     frames: int | None = None
     extra: dict[str, Any] = field(default_factory=dict)
+
+
+def _merge_versions(blocks) -> tuple:
+    """Per channel: the (from_sample, version) pairs of consecutive index blocks,
+    without the repeats each block starts with."""
+    if not blocks[0].versions:
+        return ()
+    out = []
+    for ch in range(len(blocks[0].versions)):
+        pairs = list(blocks[0].versions[ch])
+        for b in blocks[1:]:
+            for p in b.versions[ch]:
+                if p[1] != pairs[-1][1]:
+                    pairs.append(p)
+        out.append(tuple(pairs))
+    return tuple(out)
+
+
+def _merge_blocks(blocks):
+    first = blocks[0]
+    data = np.concatenate([b.data for b in blocks])
+    if isinstance(first, IndexBlock):
+        return IndexBlock(data, first.start, first.rate, _merge_versions(blocks))
+    return SignalBlock(data, first.start, first.rate)
+
+
+def merge_packets(packets: list[Packet]) -> Packet:
+    """Consecutive packets of one wire as one packet (blocks joined, events in
+    order). Every node is block-size invariant (DESIGN.md rule 1), so stepping
+    a node once on the merged packet gives what stepping it on each would."""
+    if len(packets) == 1:
+        return packets[0]
+    events = tuple(e for p in packets for e in p.events)
+    indices = None
+    if packets[0].indices is not None:
+        indices = _merge_blocks([p.indices for p in packets])
+    return Packet(_merge_blocks([p.block for p in packets]), events, indices)

@@ -177,6 +177,13 @@ class Node:
                 out[name] = ref
         return out
 
+    def live_upstream(self) -> dict[str, str]:
+        """The inputs this node reads when it steps in a live audio callback
+        (default: all). A node that gets an input's data another way in live
+        runs (the encoder subscribes to its estimator) leaves it out, so the
+        callback need not run that upstream node."""
+        return self.upstream()
+
     def fail(self, field_name: str | None, message: str) -> StreamqError:
         """A StreamqError naming this node (and field)."""
         where = f"node '{self.id}'" + (f", field '{field_name}'" if field_name else "")

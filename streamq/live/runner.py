@@ -1,12 +1,15 @@
 """Running a graph on a live device.
 
 One PortAudio stream (duplex when the graph has both a live input and a
-live output) drives the graph: its callback feeds the input node, runs one
-graph step of ``block`` frames and copies the monitor block out. That step
-is O(block) vectorised work (DESIGN.md rule 4): PDF snapshots and codebook
-designs go to one worker thread through ``ctx.offload`` and come back as
-reference swaps at a later block boundary, with the sample recorded in the
-CodebookUpdate, so an offline replay with the recorded events is bit-exact.
+live output) drives the graph: its callback feeds the input node, steps the
+nodes the monitor output needs on ``block`` frames and copies the monitor
+block out; the other nodes (estimators, meters, sinks) follow on a thread in
+batches of a few blocks (streamq.live.chain). The callback's step is
+O(block) vectorised work (DESIGN.md rule 4): PDF snapshots and codebook
+designs go to a worker process through ``ctx.offload`` and come back as
+reference swaps, each applied at its due sample (or at the next block if it
+came late), with the sample recorded in the CodebookUpdate, so an offline
+replay with the recorded events is bit-exact.
 """
 
 from __future__ import annotations
@@ -24,7 +27,8 @@ from pathlib import Path
 import numpy as np
 
 from streamq.engine.graph import Graph
-from streamq.engine.scheduler import _step_all, build, make_report, write_report
+from streamq.engine.scheduler import build, make_report, write_report
+from streamq.live.chain import LiveChain
 from streamq.errors import StreamqError
 
 STATUS_FLAGS = ("input_underflow", "input_overflow", "output_underflow", "output_overflow",
@@ -91,6 +95,14 @@ class LiveRun:
         self.sd = None
         self.error: BaseException | None = None
         self.done = threading.Event()
+        # the callback steps only what the output needs; the rest follows on a thread
+        self.chain = LiveChain(built)
+        self.chain.on_error = self._follower_failed
+
+    def _follower_failed(self, exc: BaseException) -> None:
+        if self.error is None:
+            self.error = exc
+        self.done.set()
 
     def callback(self, *args):
         sd = self.sd
@@ -117,11 +129,14 @@ class LiveRun:
                 n = min(frames, self.length - self.pos)
             if n > 0:
                 if self.inp:
-                    self.inp[0].feed(indata[:n])
-                _step_all(self.built, n)
+                    self.inp[0].feed(indata if n == frames else indata[:n])
+                self.chain.step(n)
                 if outdata is not None:
-                    outdata[:n] = self.out[0].block
-                    outdata[n:] = 0
+                    if n == frames:
+                        outdata[:] = self.out[0].block
+                    else:
+                        outdata[:n] = self.out[0].block
+                        outdata[n:] = 0
                 self.pos += n
             elif outdata is not None:
                 outdata[:] = 0
@@ -214,7 +229,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                                f"{str(exc).splitlines()[0]} (choose a supported sample_rate or "
                                f"device; see `streamq devices`)") from None
         old_switch = sys.getswitchinterval()
-        sys.setswitchinterval(0.0005)  # the background threads must not hold the GIL for long
+        sys.setswitchinterval(0.0001)  # the other threads must not hold the GIL for long
         # a full garbage collection of everything loaded so far could take milliseconds inside
         # the audio callback: set those objects aside (young objects are still collected)
         gc.collect()
@@ -232,6 +247,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         except ValueError:  # not the main thread
             pass
         try:
+            run.chain.start()
             stream.start()
             try:
                 seen, since = run.calls, time.monotonic()
@@ -256,6 +272,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 stream.stop()
                 stream.close()
         finally:
+            run.chain.stop()    # step what the callback queued last
             sys.setswitchinterval(old_switch)
             gc.unfreeze()
             if old_term is not None:

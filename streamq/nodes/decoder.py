@@ -43,6 +43,12 @@ class Decoder(Node):
         self.pending: list[CodebookUpdate] = []
         self.versions = 0
         self.channel_versions = [1] * self.C  # version 1: the encoder's first codebook
+        self.flat = None     # every channel's levels as rows (None: rebuild)
+        self.kernel = None
+        if ctx.live:         # small blocks: one compiled call per block (compiled now)
+            from streamq.design.kernels import decode_rows, warm_up
+            warm_up()
+            self.kernel = decode_rows
         if info.get("adapt") == "backward":
             self.backward = coding.BackwardAdapter(info, self.C)
             self.levels = [np.asarray(cb.levels) for cb in self.backward.current]
@@ -91,18 +97,29 @@ class Decoder(Node):
             events = [u for u in pkt.events if isinstance(u, CodebookUpdate) and u.at_sample == 0] \
                 + [u for u in mine if u.at_sample < e]
             self.pending = [u for u in mine if u.at_sample >= e]
+        elif self.kernel is not None and idx.dtype.kind == "u" and self._table() is not None:
+            # live, in the audio callback: one compiled pass with the codebooks in
+            # force; one that starts inside the block re-decodes its channel from there
+            if self.kernel(idx, self.flat, out) >= 0:
+                self._check_all(idx, s)
+            for u in self._updates(pkt.events, events):
+                a, ch = max(0, u.at_sample - s), u.channel
+                lv = self.levels[ch] = u.levels
+                self.flat[ch] = lv
+                self.codebooks[ch] = u
+                self.versions += 1
+                if self.kernel(idx[a:, ch:ch + 1], lv[None, :], out[a:, ch:ch + 1]) >= 0:
+                    self._check_all(idx[a:], s + a)
+        elif not pkt.events and idx.dtype.kind == "u" and self._table() is not None:
+            # offline, no codebook changes in this block: all channels at once
+            if idx.size and int(idx.max()) >= self.L:
+                self._check_all(idx, s)
+            out = self.flat.ravel()[idx + self.offsets]
         else:
+            self.flat = None
             cuts: list[list[CodebookUpdate]] = [[] for _ in range(self.C)]
-            for u in pkt.events:
-                if isinstance(u, CodebookUpdate):
-                    if not 0 <= u.channel < self.C:
-                        raise self.fail("input", f"codebook for channel {u.channel} at sample "
-                                                 f"{u.at_sample}, but the stream has {self.C}")
-                    if self.L and u.n_levels != self.L:
-                        raise self.fail("input", f"codebook with {u.n_levels} levels at sample "
-                                                 f"{u.at_sample}; the stream has {self.L}")
-                    cuts[u.channel].append(u)
-                    events.append(u)
+            for u in self._updates(pkt.events, events):
+                cuts[u.channel].append(u)
             for ch in range(self.C):
                 pos = s
                 for u in cuts[ch]:
@@ -115,6 +132,36 @@ class Decoder(Node):
                 if pos < e:
                     self._decode(idx, out, pos - s, frames, ch, s)
         return Packet(SignalBlock(out, s, pkt.block.rate), tuple(events), pkt.block)
+
+    def _updates(self, incoming, events: list) -> list[CodebookUpdate]:
+        """The codebook announcements among ``incoming``, checked, appended to
+        ``events``."""
+        for u in incoming:
+            if isinstance(u, CodebookUpdate):
+                if not 0 <= u.channel < self.C:
+                    raise self.fail("input", f"codebook for channel {u.channel} at sample "
+                                             f"{u.at_sample}, but the stream has {self.C}")
+                if self.L and u.n_levels != self.L:
+                    raise self.fail("input", f"codebook with {u.n_levels} levels at sample "
+                                             f"{u.at_sample}; the stream has {self.L}")
+                events.append(u)
+        return events
+
+    def _check_all(self, idx, s: int) -> None:
+        """Raise the one-line error for the first out-of-range index."""
+        for ch in range(self.C):
+            self._check(idx[:, ch], s, ch, self.levels[ch])
+
+    def _table(self):
+        """Every channel's levels as rows (rebuilt after a codebook change), or
+        None if a channel has none yet or their sizes differ."""
+        if self.flat is None:
+            lv = self.levels
+            if any(v is None or len(v) != self.L for v in lv):
+                return None
+            self.flat = np.ascontiguousarray(np.stack(lv), dtype=np.float64)
+            self.offsets = np.arange(self.C, dtype=np.intp) * self.L
+        return self.flat
 
     def _decode(self, idx, out, a, b, ch, s):
         lv = self.levels[ch]

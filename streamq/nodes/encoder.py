@@ -20,6 +20,7 @@ Adaptation modes (DESIGN.md):
 
 from __future__ import annotations
 
+import collections
 from typing import Literal
 
 import numpy as np
@@ -68,6 +69,17 @@ def live_design_job(snap, ref, init, recipe: dict):
     return drift, (design_job(snap, init, recipe) if go else None)
 
 
+FAILED = object()   # a live job whose worker call raised
+
+
+def _versions(s: int, at_start, events) -> tuple:
+    """IndexBlock.versions of a block from ``s``: per channel, the version in
+    force at ``s`` (unless replaced right there) and each announcement's."""
+    return tuple(
+        tuple([(s, at_start[ch])] * (not any(u.at_sample == s and u.channel == ch for u in events))
+              + [(u.at_sample, u.version) for u in events if u.channel == ch])
+        for ch in range(len(at_start)))
+
 METHODS = ("lloyd-max", "optimal", "ecsq", "uniform", "mu-law", "a-law", "g711-mu", "g711-a")
 
 
@@ -88,6 +100,10 @@ class EncoderConfig(NodeConfig):
     drift_threshold: float = Field(0.05, gt=0, le=1, description="Jensen-Shannon divergence (bits) "
                                                                  "that triggers a retrain")
     min_interval: Duration = Field(Duration(0), description="least time between retrains")
+    apply_after: Duration = Field(
+        Duration(0), description="trailing: a design from the window ending at t applies from "
+                                 "t + apply_after (gives a live worker time to finish it, so a "
+                                 "live run and an offline replay apply it at the same sample)")
     warm_start: bool = Field(True, description="start each design from the codebook in force")
     model: Literal[coding.PARAMETRIC] = Field(
         "gaussian", description="PDF for fixed designs, the first adaptive codebook and backward fits")
@@ -109,16 +125,18 @@ class EncoderConfig(NodeConfig):
     @model_validator(mode="after")
     def _check(self):
         if self.bits is not None and self.levels is not None:
-            raise ValueError("give bits or levels, not both")
+            raise ValueError("levels: give bits or levels, not both")
         why = coding.check_method(self.method, self.adapt)
         if why:
             raise ValueError(why)
         if self.method in coding.G711 and self.n_levels != 256:
-            raise ValueError(f"{self.method} has 256 levels (bits = 8)")
+            raise ValueError(f"bits: {self.method} has 256 levels (bits = 8)")
         if self.adapt in ("trailing", "lookahead") and self.pdf is None and self.codebooks_from is None:
-            raise ValueError(f"adapt = \"{self.adapt}\" needs a pdf-estimator: set field 'pdf'")
+            raise ValueError(f"pdf: adapt = \"{self.adapt}\" needs a pdf-estimator: set this field")
+        if self.apply_after.value and self.adapt != "trailing":
+            raise ValueError("apply_after: only adapt = \"trailing\" applies designs later")
         if self.method == "ecsq" and self.entropy is None:
-            raise ValueError("method \"ecsq\" needs a target: set field 'entropy' (bits/sample)")
+            raise ValueError("entropy: method \"ecsq\" needs a target: set this field (bits/sample)")
         return self
 
     @property
@@ -168,7 +186,11 @@ class Encoder(Node):
         self.int16 = spec.int_bits == 16
         self.in_latency = spec.latency
         self.min_interval = c.min_interval.samples(self.rate)
+        self.apply_after = c.apply_after.samples(self.rate)
+        self.late = 0                   # live: codebooks applied after their due sample
+        self.scheduled: list = []       # designed, not yet due: (at, channel, codebook, bits)
         self.version = [0] * self.C
+        self.th_rows = None             # thresholds of the codebooks in force, stacked
         self.updates = 0
         self.side_bits = 0
         self.pending: list[CodebookUpdate] = []
@@ -204,6 +226,8 @@ class Encoder(Node):
             if self.standard:  # G.711 mu-law decodes its two zero codes alike: 255 levels
                 self.L = coding_info["levels"] = first.size
             self.current = [first] * self.C
+        # the newest design of each channel: the warm start of the next one
+        self.designed = list(self.current)
         # the first codebook of every channel is in force from sample 0
         for ch in range(self.C):
             self._announce(0, ch, self.current[ch], bits0)
@@ -211,9 +235,12 @@ class Encoder(Node):
         self.replaying = c.codebooks_from is not None
         if self.replaying:
             self._open_replay(ctx)
-        # live runs: designs go to the worker thread; finished ones apply at the next block
+        # live runs: designs go to the worker process; finished ones apply when due (at a
+        # block boundary or inside a block), or at the next block if late
         self.live = bool(ctx.live and ctx.offload is not None) and self.replay is None
-        self.jobs: list = []
+        # live: [channel, snapshot_at, snapshot, result, (codebook, bits, version) or None]
+        self.jobs = collections.deque()
+        self.next_version = list(self.version)
         if self.live and c.adapt in ("trailing", "lookahead"):
             # designs start as soon as the estimator's snapshot is ready
             specs["pdf"].extra["subscribe"](self)
@@ -225,6 +252,14 @@ class Encoder(Node):
         self.preroll_index = int(first.encode(np.zeros(1))[0])
         self.delay_line = DelayLine(self.delay, self.C)
         self.dtype = index_dtype(self.L)
+        self.kernel = None
+        # live, float input, no delay: the callback's lean path (_live_step)
+        self.fast_live = (self.live and not self.int16 and self.delay == 0
+                          and self.backward is None and c.adapt in ("fixed", "trailing"))
+        if self.fast_live:  # small blocks: one compiled call per block (compiled now)
+            from streamq.design.kernels import encode_rows, warm_up
+            warm_up()
+            self.kernel = encode_rows
         return StreamSpec("index", self.rate, self.C, spec.latency + self.delay, None, spec.frames,
                           {"coding": coding_info, "n_levels": self.L,
                            "index_dtype": self.dtype.name})
@@ -280,17 +315,26 @@ class Encoder(Node):
             raise self.fail("train", problem)
         return x
 
-    def _announce(self, t: int, ch: int, cb, bits: int) -> None:
+    def _announce(self, t: int, ch: int, cb, bits: int, version: int | None = None) -> CodebookUpdate:
+        """Put ``cb`` in force on channel ``ch`` from sample ``t`` and queue its
+        announcement. ``version``: given when ``cb`` already carries it (live
+        designs are numbered when delivered)."""
         # versions count per channel, so they do not depend on processing order
-        self.version[ch] += 1
-        v = self.version[ch]
-        cb = cb.with_version(v) if hasattr(cb, "with_version") else cb
+        if version is None:
+            self.version[ch] += 1
+            v = self.version[ch]
+            cb = cb.with_version(v) if hasattr(cb, "with_version") else cb
+        else:
+            v = self.version[ch] = version
         self.current[ch] = cb
+        self.th_rows = None
         self.in_force[ch] = v
-        self.pending.append(CodebookUpdate(v, t, ch, np.asarray(cb.thresholds),
-                                           np.asarray(cb.levels), bits, self.config.method))
+        u = CodebookUpdate(v, t, ch, np.asarray(cb.thresholds), np.asarray(cb.levels), bits,
+                           self.config.method)
+        self.pending.append(u)
         self.updates += 1
         self.side_bits += bits
+        return u
 
     # -- adaptive designs -----------------------------------------------------
     def _consider(self, snap) -> bool:
@@ -305,22 +349,79 @@ class Encoder(Node):
         return go
 
     def _design(self, snap):
-        init = self.current[snap.channel] if self.config.warm_start else None
+        init = self.designed[snap.channel] if self.config.warm_start else None
         return design_job(snap, init, self.recipe)
+
+    def _designed(self, ch: int, snap, cb) -> None:
+        """Book-keeping of a finished design (the snapshot it came from)."""
+        self.designed[ch] = cb
+        self.ref[ch] = snap
+        self.last_design[ch] = snap.at_sample
 
     def _encode(self, cb, x: np.ndarray) -> np.ndarray:
         if self.int16:
             return cb.encode_int16((x * 32768.0).astype(np.int16))
         return cb.encode(x)
 
+    def live_upstream(self):
+        """Live runs get designs from the estimator's worker jobs, not its packets."""
+        ups = self.upstream()
+        if self.live or self.replaying:
+            ups.pop("pdf", None)
+        return ups
+
     def close(self, complete):
         if getattr(self, "replay_reader", None) is not None:
             self.replay_reader.close()
+
+    def _steady(self) -> bool:
+        """Whether this step can change no codebook: a fixed or live encoder with
+        nothing due (the audio callback's common case)."""
+        if self.backward is not None or self.replaying or self.delay or self.pending:
+            return False
+        if self.live:
+            jobs = self.jobs
+            return not jobs or jobs[0][3] is None
+        return self.config.adapt == "fixed"
+
+    def _live_step(self, s: int, e: int, x: np.ndarray, frames: int) -> Packet:
+        """Live runs, in the audio callback: one compiled pass over the block
+        with the codebooks in force; a codebook that falls due inside the block
+        re-encodes its channel from that sample on."""
+        out = np.empty((frames, self.C), dtype=self.dtype)
+        th = self.th_rows if self.th_rows is not None else self._stack_thresholds()
+        self.kernel(x, th, out)
+        jobs = self.jobs
+        if not jobs or jobs[0][3] is None:
+            return Packet(IndexBlock(out, s, self.rate, tuple(((s, v),) for v in self.in_force)))
+        at_start = list(self.in_force)
+        self._live_designs(s, e, None)
+        events, self.pending = self.pending, []
+        for u in events:   # in sample order; a later one overwrites the rows after it
+            a, ch = u.at_sample - s, u.channel
+            self.kernel(x[a:, ch:ch + 1], u.thresholds[None, :], out[a:, ch:ch + 1])
+        return Packet(IndexBlock(out, s, self.rate, _versions(s, at_start, events)), tuple(events))
+
+    def _stack_thresholds(self):
+        """Every channel's thresholds as rows of one array (None if their counts
+        differ); kept until the next codebook change."""
+        th = [np.asarray(cb.thresholds, dtype=np.float64) for cb in self.current]
+        if any(t.shape != th[0].shape for t in th):
+            return None
+        self.th_rows = np.ascontiguousarray(np.stack(th))
+        return self.th_rows
 
     def step(self, frames, inputs) -> Packet:
         pkt = inputs["input"]
         s, e = pkt.block.start, pkt.block.start + frames
         x = pkt.block.data
+        if self.fast_live and not self.pending:
+            return self._live_step(s, e, x, frames)
+        if self._steady():
+            out = np.empty((frames, self.C), dtype=self.dtype)
+            for ch, cb in enumerate(self.current):
+                out[:, ch] = self._encode(cb, x[:, ch])
+            return Packet(IndexBlock(out, s, self.rate, tuple(((s, v),) for v in self.in_force)))
         x = self.delay_line.push(x)
         out = np.empty((frames, self.C), dtype=self.dtype)
         at_start = list(self.in_force)
@@ -345,6 +446,7 @@ class Encoder(Node):
                 for u in self._replayed(e):
                     cb = Codebook(levels=u.levels, thresholds=u.thresholds, version=u.version)
                     self.current[u.channel] = cb
+                    self.th_rows = None
                     self.version[u.channel] = u.version
                     self.in_force[u.channel] = u.version
                     self.pending.append(u)
@@ -352,7 +454,7 @@ class Encoder(Node):
                     self.side_bits += int(u.side_info_bits)
                     changes[u.channel].append((u.at_sample, cb))
             elif self.live:
-                self._live_designs(s, inputs, changes)
+                self._live_designs(s, e, changes)
             elif self.config.adapt in ("trailing", "lookahead"):
                 snaps = [ev for ev in inputs["pdf"].events
                          if getattr(ev, "counts", None) is not None and s <= ev.at_sample < e]
@@ -362,10 +464,13 @@ class Encoder(Node):
                     done = self._design(ev)
                     if done is None:
                         continue
-                    self._announce(ev.at_sample, ev.channel, *done)
-                    self.ref[ev.channel] = ev
-                    self.last_design[ev.channel] = ev.at_sample
-                    changes[ev.channel].append((ev.at_sample, self.current[ev.channel]))
+                    self._designed(ev.channel, ev, done[0])
+                    self.scheduled.append((ev.at_sample + self.apply_after, ev.channel, *done))
+                # codebooks fall due in sample order (apply_after is the same for all)
+                while self.scheduled and self.scheduled[0][0] < e:
+                    at, ch, cb, bits = self.scheduled.pop(0)
+                    self._announce(at, ch, cb, bits)
+                    changes[ch].append((at, self.current[ch]))
             for ch in range(self.C):
                 cur, pos = in_force[ch], s
                 for t, cb in changes[ch]:
@@ -374,60 +479,91 @@ class Encoder(Node):
                     cur, pos = cb, t
                 if pos < e:
                     out[pos - s:, ch] = self._encode(cur, x[pos - s:, ch])
+        if not self.pending:     # the common case: no announcements in this block
+            return Packet(IndexBlock(out, s, self.rate, tuple(((s, v),) for v in at_start)))
         # announcements travel with the packet that holds their first sample
         events = [u for u in self.pending if u.at_sample < e]
         self.pending = [u for u in self.pending if u.at_sample >= e]
         events.sort(key=lambda u: (u.at_sample, u.channel))
-        versions = tuple(
-            tuple([(s, at_start[ch])] * (not any(u.at_sample == s and u.channel == ch for u in events))
-                  + [(u.at_sample, u.version) for u in events if u.channel == ch])
-            for ch in range(self.C))
-        return Packet(IndexBlock(out, s, self.rate, versions), tuple(events))
+        return Packet(IndexBlock(out, s, self.rate, _versions(s, at_start, events)), tuple(events))
 
-    def _live_designs(self, s: int, inputs, changes) -> None:
-        """Live runs: apply the designs the worker process has delivered, at this
-        block's first sample (only reference swaps happen here)."""
-        while self.jobs and self.jobs[0][1] is not None:
-            ch, snap, (drift, done) = self.jobs.pop(0)
-            self.drift[ch] = drift
-            if done is None:
+    def _live_designs(self, s: int, e: int, changes) -> None:
+        """Live runs (audio thread): apply the designs the worker process has
+        delivered, in order, each at its due sample (the snapshot's sample plus
+        ``apply_after``), or at this block's first sample if that has passed
+        (counted as late). Only reference swaps happen here."""
+        jobs = self.jobs
+        while jobs:
+            job = jobs[0]
+            res = job[3]
+            if res is None:            # not back from the worker yet
+                return
+            if res is FAILED:
+                jobs.popleft()
                 continue
-            self._announce(s, ch, *done)
-            self.ref[ch] = snap
-            self.last_design[ch] = s
-            changes[ch].append((s, self.current[ch]))
+            ready = job[4]
+            at = job[1] + self.apply_after
+            if ready is not None and at >= e:
+                return                 # due in a later block
+            jobs.popleft()
+            if ready is None:
+                continue
+            if at < s:
+                self.late += 1
+                at = s
+            ch = job[0]
+            self._announce(at, ch, *ready)
+            if changes is not None:
+                changes[ch].append((at, self.current[ch]))
 
     def requests(self, t: int) -> list:
-        """Live runs (audio thread, at a hop of the estimator): the designs to run
-        with the snapshots of sample ``t``, as (channel, job, args)."""
+        """Live runs (at a hop of the estimator): the designs to run with the
+        snapshots of sample ``t``, as (channel, job, args). Each design is
+        warm-started from the channel's newest one, as offline."""
         out = []
         for ch in range(self.C):
-            if any(j[0] == ch for j in self.jobs):
+            if any(j[0] == ch and j[3] is None for j in list(self.jobs)):
                 continue   # the worker is behind: skip, the next snapshot is fresher
             if t - self.last_design[ch] < self.min_interval:
                 continue
-            init = self.current[ch] if self.config.warm_start else None
+            init = self.designed[ch] if self.config.warm_start else None
             out.append((ch, live_design_job, (self.ref[ch], init, self.recipe)))
-            self.jobs.append((ch, None, None))   # placeholder until delivered
+            self.jobs.append([ch, t, None, None, None])   # filled in when delivered
         return out
 
     def failed(self, exc: BaseException) -> None:
         """Live runs (worker result thread): the hop's job failed. Keep the codebooks
-        in force, drop the placeholders, and say what went wrong."""
+        in force, mark the waiting jobs failed, and say what went wrong."""
         self.worker_errors.append(f"{type(exc).__name__}: {exc}")
-        self.jobs[:] = [j for j in self.jobs if j[1] is not None]
+        for job in list(self.jobs):
+            if job[3] is None:
+                job[3] = FAILED
 
     def deliver(self, snaps, results) -> None:
-        """Live runs (worker result thread): designs ready to apply at the next block."""
+        """Live runs (worker result thread): finished designs, in job order. The
+        bookkeeping for the next request (warm start, drift reference, interval)
+        is done here; the audio thread applies them when due."""
         for ch, res in results:
-            for i, job in enumerate(self.jobs):
-                if job[0] == ch and job[1] is None:
-                    self.jobs[i] = (ch, snaps[ch], res)
+            for job in list(self.jobs):
+                if job[0] == ch and job[3] is None:
+                    drift, done = res
+                    self.drift[ch] = drift
+                    if done is not None:
+                        self._designed(ch, snaps[ch], done[0])
+                        # numbered now (designs apply in delivery order), so the audio
+                        # thread only swaps references
+                        self.next_version[ch] += 1
+                        v = self.next_version[ch]
+                        job[4] = (done[0].with_version(v), done[1], v)
+                    job[2] = snaps[ch]
+                    job[3] = res     # set last: the audio thread reads it as "ready"
                     break
 
     def report(self):
         extra = {"worker_errors": len(self.worker_errors),
                  "worker_error": self.worker_errors[-1]} if self.worker_errors else {}
+        if self.live and self.config.adapt == "trailing":
+            extra["late_codebooks"] = self.late
         return {**extra, "codebook_updates": self.updates, "side_info_bits": self.side_bits,
                 "levels": self.L, "latency_frames": self.delay,
                 "drift": [d for d in self.drift]}
@@ -436,6 +572,7 @@ class Encoder(Node):
         st = {"version": list(self.version), "current": list(self.current), "pending": list(self.pending),
               "ref": list(self.ref), "last_design": list(self.last_design),
               "updates": self.updates, "side_bits": self.side_bits,
+              "designed": list(self.designed), "scheduled": list(self.scheduled),
               "delay_line": self.delay_line.get_state()}
         if self.backward is not None:
             st["backward"] = self.backward.get_state()
@@ -444,7 +581,9 @@ class Encoder(Node):
     def set_state(self, st):
         self.version, self.updates, self.side_bits = list(st["version"]), st["updates"], st["side_bits"]
         self.current, self.pending = list(st["current"]), list(st["pending"])
+        self.th_rows = None
         self.ref, self.last_design = list(st["ref"]), list(st["last_design"])
+        self.designed, self.scheduled = list(st["designed"]), list(st["scheduled"])
         self.delay_line.set_state(st["delay_line"])
         if self.backward is not None:
             self.backward.set_state(st["backward"])

@@ -5,6 +5,7 @@ hold the block and do O(block) vectorised work."""
 
 from __future__ import annotations
 
+import math
 from typing import Literal
 
 import numpy as np
@@ -69,7 +70,7 @@ class LiveOutputConfig(NodeConfig):
     @model_validator(mode="after")
     def _check(self):
         if self.monitor == "noise" and self.reference is None:
-            raise ValueError("monitor = \"noise\" needs field 'reference' (the original signal)")
+            raise ValueError("reference: monitor = \"noise\" needs this field (the original signal)")
         return self
 
 
@@ -112,6 +113,10 @@ class LiveOutput(Node):
         self.limited_blocks = 0
         self.peak_out = 0.0
         self.block: np.ndarray | None = None
+        self.no_ref = np.empty((0, self.C))
+        from streamq.design.kernels import monitor_block, warm_up
+        warm_up()          # compiled now, not in the audio callback
+        self.kernel = monitor_block
         return None
 
     def set_gain(self, gain_db: float) -> None:
@@ -120,30 +125,27 @@ class LiveOutput(Node):
 
     def step(self, frames, inputs):
         x = inputs["input"].block.data
+        ref = self.no_ref
         if self.delay is not None:
-            x = x - self.delay.push(inputs["reference"].block.data)
-        if self.gain == self.target:   # steady: one multiply
-            y = x * self.gain
-        else:                          # gain ramp in dB, linear per sample across the block
-            g0 = 20.0 * np.log10(self.gain)
-            g1t = 20.0 * np.log10(self.target)
-            step_db = np.clip(g1t - g0, -self.db_per_sample * frames, self.db_per_sample * frames)
-            ramp = 10.0 ** ((g0 + step_db * (np.arange(1, frames + 1) / frames)) / 20.0)
-            self.gain = self.target if abs(g1t - g0 - step_db) < 1e-9 else float(ramp[-1])
-            y = x * ramp[:, None]
-        # limiter: instant attack per block, slow release, hard ceiling as a last guard
-        peak = float(np.nanmax(np.abs(y))) if y.size and not np.isnan(y).all() else 0.0
-        need = self.ceiling / peak if peak > self.ceiling else 1.0
-        new = min(need, self.limit_gain * (self.release ** frames))
-        new = min(new, 1.0)
+            ref = self.delay.push(inputs["reference"].block.data)
+        g0 = g1 = 20.0 * math.log10(self.gain)
+        if self.gain != self.target:   # ramp in dB at db_per_sample, linear across the block
+            most = self.db_per_sample * frames
+            to = 20.0 * math.log10(self.target)
+            if abs(to - g0) <= most:
+                g1, self.gain = to, self.target
+            else:
+                g1 = g0 + (most if to > g0 else -most)
+                self.gain = 10.0 ** (g1 / 20.0)
+        y = np.empty((frames, self.C))
+        # limiter: instant attack per block, release at `release`, hard ceiling last
+        new, peak, top = self.kernel(x, ref, g0, g1, self.limit_gain, self.release ** frames,
+                                     self.ceiling, y)
         if new < 1.0:
             self.limited_blocks += 1
-        lg = np.linspace(self.limit_gain, new, frames + 1)[1:] if new > self.limit_gain else new
         self.limit_gain = new
-        y = y * (lg[:, None] if isinstance(lg, np.ndarray) else lg)
-        np.nan_to_num(y, copy=False, nan=0.0, posinf=0.0, neginf=0.0)  # never NaN to a speaker
-        np.clip(y, -self.ceiling, self.ceiling, out=y)
-        self.peak_out = max(self.peak_out, float(np.max(np.abs(y))) if y.size else 0.0)
+        if top > self.peak_out:
+            self.peak_out = top
         self.block = y
         return None
 

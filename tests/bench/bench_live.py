@@ -154,11 +154,14 @@ def show(label: str, t: dict[str, float]) -> None:
 def time_steps(adaptive: bool, x: np.ndarray, workdir: Path) -> dict:
     """Build the live graph with offloaded designs and time each 128-frame step."""
     from streamq.engine.graph import parse_graph
-    from streamq.engine.scheduler import _step_all, build
+    from streamq.engine.scheduler import build
+    from streamq.live.chain import LiveChain
     designer, executor = make_workers()   # as the live runner has them
     graph = parse_graph(graph_text(adaptive, None), workdir / "bench.toml")
     built = build(graph, workdir, live=True, offload=designer.submit, background=executor.submit)
     inp = built.graph.nodes["mic"]
+    chain = LiveChain(built)    # as the live runner splits it: callback part + follower
+    chain.start()
     steps = x.shape[0] // BLOCK
     wall = np.empty(steps)
     cpu = np.empty(steps)
@@ -174,15 +177,18 @@ def time_steps(adaptive: bool, x: np.ndarray, workdir: Path) -> dict:
             c0 = time.thread_time()
             w0 = time.perf_counter()
             inp.feed(x[i * BLOCK:(i + 1) * BLOCK])
-            _step_all(built, BLOCK)
+            chain.step(BLOCK)
             wall[i] = time.perf_counter() - w0
             cpu[i] = time.thread_time() - c0
     finally:
+        chain.stop()
         sys.setswitchinterval(old)
         executor.shutdown(wait=True)
         designer.shutdown(wait=True)
         for node in built.graph.nodes.values():
             node.close(True)
+    if chain.error is not None:
+        raise chain.error
     updates = built.graph.nodes["noise"].report()["codebook_updates"]
     skip = RATE // BLOCK // 2          # the first half second: warm-up, first designs
     return {"wall": percentiles(wall[skip:] * 1000.0), "cpu": percentiles(cpu[skip:] * 1000.0),
@@ -216,11 +222,15 @@ def node_breakdown(x: np.ndarray, workdir: Path) -> None:
         designer.shutdown(wait=True)
         for node in nodes.values():
             node.close(True)
-    print("  per node, thread CPU (adaptive):")
+    from streamq.live.chain import LiveChain
+    in_callback = {nid for nid, _, _ in LiveChain(built).rt}
+    print("  per node, thread CPU (adaptive; * = stepped in the audio callback, the rest on "
+          "the follower thread in live runs):")
     skip = RATE // BLOCK // 2
     for nid in order:
         ms = np.array(per[nid][skip:]) / 1e6
-        show(f"  {nid} ({nodes[nid].kind})", percentiles(ms))
+        mark = "*" if nid in in_callback else " "
+        show(f"{mark} {nid} ({nodes[nid].kind})", percentiles(ms))
 
 
 def offline(seconds: float, by_node: bool = False) -> list[float]:

@@ -1,0 +1,143 @@
+"""Compiled inner loops (numba) for the few places where numpy's per-call
+overhead or extra passes matter: the live audio callback's small blocks.
+
+On a shared machine the audio callback runs with cold caches after every
+wait, and each numpy call then costs tens of microseconds; one compiled call
+per node touches far less code. Every kernel here has a plain numpy
+definition it must equal exactly; the tests check each against it. The
+callback's kernels keep the interpreter lock (a kernel that let it go would
+hand it to another thread for a whole switch interval). Compiled code is
+cached on disk (``cache=True``); :func:`warm_up` compiles or loads it before
+a live stream starts, never inside the callback.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+
+@njit(cache=True)
+def encode_rows(x, thresholds, out):  # pragma: no cover - compiled
+    """Cell indices of a block, each channel with its own thresholds.
+
+    Equal to ``out[:, c] = np.searchsorted(thresholds[c], x[:, c], side="right")``
+    for every channel ``c`` (NaN goes past the last threshold, as numpy sorts it).
+
+    Parameters
+    ----------
+    x : ndarray, shape (frames, channels), float64
+    thresholds : ndarray, shape (channels, L - 1), float64, each row ascending
+    out : ndarray, shape (frames, channels), unsigned integer; written in place
+    """
+    n, C = x.shape
+    m = thresholds.shape[1]
+    for i in range(n):
+        for c in range(C):
+            v = x[i, c]
+            if v != v:
+                out[i, c] = m
+                continue
+            lo = 0
+            hi = m
+            while lo < hi:
+                mid = (lo + hi) >> 1
+                if thresholds[c, mid] <= v:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            out[i, c] = lo
+
+
+@njit(cache=True)
+def decode_rows(idx, table, out):  # pragma: no cover - compiled
+    """Reconstruction levels of a block, each channel with its own levels.
+
+    Equal to ``out[:, c] = table[c][idx[:, c]]`` for every channel ``c``.
+
+    Returns
+    -------
+    int
+        -1, or the first flat position ``i * channels + c`` whose index is not
+        below ``table.shape[1]`` (``out`` is then incomplete).
+    """
+    n, C = idx.shape
+    L = table.shape[1]
+    for i in range(n):
+        for c in range(C):
+            k = idx[i, c]
+            if k >= L:
+                return i * C + c
+            out[i, c] = table[c, k]
+    return -1
+
+
+@njit(cache=True)
+def monitor_block(x, ref, g0_db, g1_db, limit_gain, release, ceiling, out):  # pragma: no cover
+    """The monitor output of one block: gain ramp, limiter and ceiling.
+
+    ``y = (x - ref) * g`` (``ref`` may have no rows: then ``y = x * g``), where
+    the gain ``g`` moves linearly in dB from ``g0_db`` (before the block) to
+    ``g1_db`` (at its last frame); non-finite samples become 0. The limiter
+    gain is ``new = min(ceiling / peak(y), limit_gain * release, 1)``: it drops
+    at once, and when it recovers it ramps linearly from ``limit_gain`` across
+    the block. Finally every sample is clipped to ``[-ceiling, ceiling]``.
+
+    Returns
+    -------
+    (new limiter gain, peak of y, peak of the output)
+    """
+    n, C = x.shape
+    noise = ref.shape[0] > 0
+    steady = g0_db == g1_db
+    g = 10.0 ** (g1_db / 20.0)
+    peak = 0.0
+    for i in range(n):
+        if not steady:
+            g = 10.0 ** ((g0_db + (g1_db - g0_db) * (i + 1) / n) / 20.0)
+        for c in range(C):
+            v = x[i, c]
+            if noise:
+                v -= ref[i, c]
+            v *= g
+            if not np.isfinite(v):
+                v = 0.0
+            out[i, c] = v
+            a = abs(v)
+            if a > peak:
+                peak = a
+    need = ceiling / peak if peak > ceiling else 1.0
+    new = min(need, limit_gain * release, 1.0)
+    top = 0.0
+    for i in range(n):
+        lg = limit_gain + (new - limit_gain) * (i + 1) / n if new > limit_gain else new
+        for c in range(C):
+            v = out[i, c] * lg
+            if v > ceiling:
+                v = ceiling
+            elif v < -ceiling:
+                v = -ceiling
+            out[i, c] = v
+            a = abs(v)
+            if a > top:
+                top = a
+    return new, peak, top
+
+
+def warm_up() -> None:
+    """Compile (or load from the disk cache) every kernel for the array types
+    the live nodes pass, so no compilation happens inside an audio callback:
+    whole blocks (contiguous) with the node's own tables, and column views
+    with a codebook's read-only rows (a change inside a block)."""
+    whole = np.zeros((2, 2))
+    column = np.zeros((2, 4))[:, 1:2]
+    row = np.zeros((1, 1))
+    row.setflags(write=False)
+    for dt in (np.uint8, np.uint16, np.uint32):
+        idx = np.zeros((2, 2), dtype=dt)
+        encode_rows(whole, np.zeros((2, 1)), idx)
+        encode_rows(column, row, idx[:, 1:2])
+        decode_rows(idx, np.zeros((2, 1)), whole.copy())
+        decode_rows(idx[:, 1:2], row, np.zeros((2, 4))[:, 1:2])
+    monitor_block(whole, whole, 0.0, -1.0, 1.0, 1.0, 0.5, np.empty((2, 2)))
+    monitor_block(whole, np.empty((0, 2)), 0.0, -1.0, 1.0, 1.0, 0.5, np.empty((2, 2)))

@@ -76,6 +76,9 @@ def decode_rows(idx, table, out):  # pragma: no cover - compiled
 def monitor_block(x, ref, g0_db, g1_db, limit_gain, release, ceiling, out):  # pragma: no cover
     """The monitor output of one block: gain ramp, limiter and ceiling.
 
+    ``out`` may be float32 (a device buffer): the limiting is done in float64
+    and the clipped value stored.
+
     ``y = (x - ref) * g`` (``ref`` may have no rows: then ``y = x * g``), where
     the gain ``g`` moves linearly in dB from ``g0_db`` (before the block) to
     ``g1_db`` (at its last frame); non-finite samples become 0. The limiter
@@ -139,5 +142,5 @@ def warm_up() -> None:
         encode_rows(column, row, idx[:, 1:2])
         decode_rows(idx, np.zeros((2, 1)), whole.copy())
         decode_rows(idx[:, 1:2], row, np.zeros((2, 4))[:, 1:2])
-    monitor_block(whole, whole, 0.0, -1.0, 1.0, 1.0, 0.5, np.empty((2, 2)))
-    monitor_block(whole, np.empty((0, 2)), 0.0, -1.0, 1.0, 1.0, 0.5, np.empty((2, 2)))
+    for out in (np.empty((2, 2)), np.empty((2, 2), dtype=np.float32)):  # (device buffers)
+        monitor_block(whole, whole, 0.0, -1.0, 1.0, 1.0, 0.5, out)

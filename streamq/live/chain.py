@@ -15,6 +15,7 @@ callback instead of competing with it for the interpreter lock.
 from __future__ import annotations
 
 import collections
+import gc
 import threading
 
 from streamq.engine.blocks import merge_packets
@@ -46,8 +47,10 @@ class LiveChain:
         self.built = built
         nodes, order = built.graph.nodes, built.graph.order
         rt = _needed_live(built)
-        self.rt = [(nid, nodes[nid], tuple(nodes[nid].live_upstream().items()))
+        # (id, node, its inputs dict, reused every block, and where each input comes from)
+        self.rt = [(nid, nodes[nid], {}, tuple(nodes[nid].live_upstream().items()))
                    for nid in order if nid in rt]
+        self.outs: dict = {}
         self.rest = [(nid, nodes[nid], tuple(nodes[nid].upstream().items()))
                      for nid in order if nid not in rt]
         # the callback's packets the follower reads
@@ -65,9 +68,11 @@ class LiveChain:
     # -- the audio callback ---------------------------------------------------
     def step(self, frames: int) -> None:
         """One device block through the callback's nodes; queue what the follower needs."""
-        outs = {}
-        for nid, node, ups in self.rt:
-            outs[nid] = node.step(frames, {f: outs[ref] for f, ref in ups})
+        outs = self.outs
+        for nid, node, ins, ups in self.rt:
+            for f, ref in ups:
+                ins[f] = outs[ref]
+            outs[nid] = node.step(frames, ins)
         if self.rest:
             self.queue.append((frames, tuple([outs[f] for f in self.feeds])))
             self.queued += frames
@@ -99,10 +104,16 @@ class LiveChain:
 
     def _follow(self) -> None:
         try:
+            batches = 0
             while not self._stop:
                 self._wake.wait(0.1)    # (a stalled stream still gets followed)
                 self._wake.clear()
                 self.follow_once()
+                batches += 1
+                if not gc.isenabled():
+                    # the live runner turns automatic collection off, so that it never
+                    # starts inside the audio callback: collect here, between callbacks
+                    gc.collect(2 if batches % 12_000 == 0 else 1 if batches % 200 == 0 else 0)
             self.follow_once()
         except BaseException as exc:   # the main thread reports it and stops the run
             self.error = exc

@@ -14,6 +14,7 @@ replay with the recorded events is bit-exact.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import sys
@@ -34,6 +35,8 @@ from streamq.errors import StreamqError
 STATUS_FLAGS = ("input_underflow", "input_overflow", "output_underflow", "output_overflow",
                 "priming_output")
 TIMES = 1 << 16  # callback work times kept (a ring: constant memory)
+# the other threads must not hold the interpreter lock long when the callback wants it
+SWITCH_INTERVAL = 0.0001
 STALL_SECONDS = 3.0  # no audio callback for this long: the device or server is gone
 
 
@@ -70,6 +73,32 @@ def make_workers() -> tuple[ProcessPoolExecutor, ThreadPoolExecutor]:
     return designer, ThreadPoolExecutor(max_workers=1, thread_name_prefix="streamq-meter")
 
 
+@contextlib.contextmanager
+def realtime_conditions():
+    """The interpreter settings for a running audio callback, restored after.
+
+    A short switch interval: another thread must not hold the interpreter lock
+    long when the callback wants it. Everything loaded so far is set aside from
+    garbage collection (``gc.freeze``: a full collection could take
+    milliseconds), and automatic collection is off, so that none starts inside
+    the callback: the follower thread collects between callbacks
+    (streamq.live.chain).
+    """
+    old_switch = sys.getswitchinterval()
+    was_enabled = gc.isenabled()
+    sys.setswitchinterval(SWITCH_INTERVAL)
+    gc.collect()
+    gc.freeze()
+    gc.disable()
+    try:
+        yield
+    finally:
+        sys.setswitchinterval(old_switch)
+        gc.unfreeze()
+        if was_enabled:
+            gc.enable()
+
+
 class LiveRun:
     """The state shared between the audio callback and the main thread."""
 
@@ -88,7 +117,7 @@ class LiveRun:
             raise StreamqError("a live graph needs a live-input or a finite source")
         self.length = built.length
         self.pos = 0
-        self.times = np.zeros(TIMES)
+        self.times = [0.0] * TIMES    # (a list: cheaper to store into from the callback)
         self.calls = 0
         self.status = dict.fromkeys(STATUS_FLAGS, 0)
         self.xrun_calls = 0
@@ -130,11 +159,15 @@ class LiveRun:
             if n > 0:
                 if self.inp:
                     self.inp[0].feed(indata if n == frames else indata[:n])
-                self.chain.step(n)
-                if outdata is not None:
-                    if n == frames:
-                        outdata[:] = self.out[0].block
-                    else:
+                if outdata is not None and n == frames:
+                    # the monitor writes straight into the device's buffer
+                    self.out[0].device_block = outdata
+                    self.chain.step(n)
+                else:
+                    if self.out:
+                        self.out[0].device_block = None
+                    self.chain.step(n)
+                    if outdata is not None:
                         outdata[:n] = self.out[0].block
                         outdata[n:] = 0
                 self.pos += n
@@ -162,7 +195,7 @@ class LiveRun:
         n = min(self.calls, TIMES)
         if n == 0:
             return {}
-        ms = self.times[:n] * 1000.0
+        ms = np.array(self.times[:n]) * 1000.0
         return {f"p{q}": float(np.percentile(ms, q)) for q in (50, 90, 99)} | {"max": float(ms.max())}
 
 
@@ -228,12 +261,8 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
             raise StreamqError(f"cannot open the audio stream at {rate} Hz, block {block}: "
                                f"{str(exc).splitlines()[0]} (choose a supported sample_rate or "
                                f"device; see `streamq devices`)") from None
-        old_switch = sys.getswitchinterval()
-        sys.setswitchinterval(0.0001)  # the other threads must not hold the GIL for long
-        # a full garbage collection of everything loaded so far could take milliseconds inside
-        # the audio callback: set those objects aside (young objects are still collected)
-        gc.collect()
-        gc.freeze()
+        conditions = realtime_conditions()
+        conditions.__enter__()
         meter = _terminal_meter(args)
         interrupted = False
         stalled = False
@@ -273,8 +302,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 stream.close()
         finally:
             run.chain.stop()    # step what the callback queued last
-            sys.setswitchinterval(old_switch)
-            gc.unfreeze()
+            conditions.__exit__(None, None, None)
             if old_term is not None:
                 signal.signal(signal.SIGTERM, old_term)
             if meter:

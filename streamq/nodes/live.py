@@ -114,6 +114,7 @@ class LiveOutput(Node):
         self.peak_out = 0.0
         self.block: np.ndarray | None = None
         self.no_ref = np.empty((0, self.C))
+        self.device_block: np.ndarray | None = None
         from streamq.design.kernels import monitor_block, warm_up
         warm_up()          # compiled now, not in the audio callback
         self.kernel = monitor_block
@@ -137,7 +138,11 @@ class LiveOutput(Node):
             else:
                 g1 = g0 + (most if to > g0 else -most)
                 self.gain = 10.0 ** (g1 / 20.0)
-        y = np.empty((frames, self.C))
+        # the live runner may hand over the device's own buffer: written in place
+        y = self.device_block
+        self.device_block = None      # valid for this callback only
+        if y is None or y.shape[0] != frames:
+            y = np.empty((frames, self.C))
         # limiter: instant attack per block, release at `release`, hard ceiling last
         new, peak, top = self.kernel(x, ref, g0, g1, self.limit_gain, self.release ** frames,
                                      self.ceiling, y)

@@ -10,8 +10,9 @@ is the baseline; the ratio p99 / period is printed with PASS or MISS.
 Two measurements:
 
 1. Offline, the cleaner number. The graph is built as the live runner builds
-   it (live nodes, designs offloaded to the worker process, the same thread
-   switch interval) and the graph step (``streamq.engine.scheduler._step_all``)
+   it (live nodes, designs offloaded to the worker process, the same
+   interpreter settings, ``realtime_conditions``) and the callback's step
+   (``streamq.live.chain.LiveChain.step``, with the follower thread running)
    is called on 128-frame blocks of an invented programme, paced by a clock
    at the block rate (so the design worker gets the idle time it gets in a
    live run). Each step is timed by wall clock and by the stepping thread's
@@ -43,7 +44,7 @@ import sys
 import tempfile
 import time
 
-from streamq.live.runner import make_workers
+from streamq.live.runner import make_workers, realtime_conditions
 from pathlib import Path
 
 import numpy as np
@@ -165,8 +166,8 @@ def time_steps(adaptive: bool, x: np.ndarray, workdir: Path) -> dict:
     steps = x.shape[0] // BLOCK
     wall = np.empty(steps)
     cpu = np.empty(steps)
-    old = sys.getswitchinterval()
-    sys.setswitchinterval(0.0005)   # as the live runner sets it
+    conditions = realtime_conditions()   # as the live runner sets them
+    conditions.__enter__()
     try:
         start = time.perf_counter()
         for i in range(steps):
@@ -182,7 +183,7 @@ def time_steps(adaptive: bool, x: np.ndarray, workdir: Path) -> dict:
             cpu[i] = time.thread_time() - c0
     finally:
         chain.stop()
-        sys.setswitchinterval(old)
+        conditions.__exit__(None, None, None)
         executor.shutdown(wait=True)
         designer.shutdown(wait=True)
         for node in built.graph.nodes.values():
@@ -204,8 +205,8 @@ def node_breakdown(x: np.ndarray, workdir: Path) -> None:
                   live=True, offload=designer.submit, background=executor.submit)
     nodes, order = built.graph.nodes, built.graph.order
     per = {nid: [] for nid in order}
-    old = sys.getswitchinterval()
-    sys.setswitchinterval(0.0005)
+    conditions = realtime_conditions()
+    conditions.__enter__()
     try:
         for i in range(x.shape[0] // BLOCK):
             nodes["mic"].feed(x[i * BLOCK:(i + 1) * BLOCK])
@@ -217,13 +218,13 @@ def node_breakdown(x: np.ndarray, workdir: Path) -> None:
                 outs[nid] = node.step(BLOCK, ins)
                 per[nid].append(time.thread_time_ns() - c0)
     finally:
-        sys.setswitchinterval(old)
+        conditions.__exit__(None, None, None)
         executor.shutdown(wait=True)
         designer.shutdown(wait=True)
         for node in nodes.values():
             node.close(True)
     from streamq.live.chain import LiveChain
-    in_callback = {nid for nid, _, _ in LiveChain(built).rt}
+    in_callback = {nid for nid, *_ in LiveChain(built).rt}
     print("  per node, thread CPU (adaptive; * = stepped in the audio callback, the rest on "
           "the follower thread in live runs):")
     skip = RATE // BLOCK // 2

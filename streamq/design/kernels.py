@@ -127,6 +127,90 @@ def monitor_block(x, ref, g0_db, g1_db, limit_gain, release, ceiling, out):  # p
     return new, peak, top
 
 
+@njit(cache=True, nogil=True)
+def window_summary(x, bins, tracked, clip_level):  # pragma: no cover - compiled
+    """Histogram and moments of one window in two passes.
+
+    The histogram equals ``streamq.nodes.estimator.window_histogram`` (unweighted)
+    exactly: the same edges and the same cell arithmetic. The moments are the
+    plain sums ``window_stats`` takes means of, added in sample order.
+
+    Returns
+    -------
+    (counts, lo, width, mean, variance, fourth central moment, peak |x|,
+    samples with |x| >= clip_level)
+    """
+    n = x.shape[0]
+    lo = x[0]
+    hi = x[0]
+    total = 0.0
+    peak = 0.0
+    clipped = 0
+    for i in range(n):
+        v = x[i]
+        if v < lo:
+            lo = v
+        if v > hi:
+            hi = v
+        total += v
+        a = abs(v)
+        if a > peak:
+            peak = a
+        if a >= clip_level:
+            clipped += 1
+    if tracked:
+        if hi - lo < 1e-12:
+            lo, hi = lo - 1e-6, hi + 1e-6
+        pad = 0.5 * (hi - lo) / bins
+        lo, hi = lo - pad, hi + pad
+    else:
+        lo, hi = -1.0, 1.0
+    width = (hi - lo) / bins
+    inv = 1.0 / width
+    counts = np.zeros(bins)
+    mean = total / n
+    m2 = 0.0
+    m4 = 0.0
+    for i in range(n):
+        v = x[i]
+        k = int((v - lo) * inv)
+        if k < 0:
+            k = 0
+        elif k > bins - 1:
+            k = bins - 1
+        counts[k] += 1.0
+        d = v - mean
+        d2 = d * d
+        m2 += d2
+        m4 += d2 * d2
+    return counts, lo, width, mean, m2 / n, m4 / n, peak, clipped
+
+
+@njit(cache=True, nogil=True)
+def frame_sums(rows, C, F):  # pragma: no cover - compiled
+    """Per-frame sums of a meter's rows, each frame's samples added in order.
+
+    ``rows`` holds, per sample, the reference (C columns), the error (C) and an
+    overload flag (C). For each whole frame of ``F`` rows and channel ``c`` the
+    result holds sum r^2, sum e^2, sum e^2 * overload and sum overload, as the
+    columns ``c``, ``C + c``, ``2C + c`` and ``3C + c``.
+    """
+    K = rows.shape[0] // F
+    out = np.zeros((K, 4 * C))
+    for k in range(K):
+        for i in range(k * F, (k + 1) * F):
+            for c in range(C):
+                r = rows[i, c]
+                e = rows[i, C + c]
+                ov = rows[i, 2 * C + c]
+                e2 = e * e
+                out[k, c] += r * r
+                out[k, C + c] += e2
+                out[k, 2 * C + c] += e2 * ov
+                out[k, 3 * C + c] += ov
+    return out
+
+
 def warm_up() -> None:
     """Compile (or load from the disk cache) every kernel for the array types
     the live nodes pass, so no compilation happens inside an audio callback:
@@ -142,5 +226,7 @@ def warm_up() -> None:
         encode_rows(column, row, idx[:, 1:2])
         decode_rows(idx, np.zeros((2, 1)), whole.copy())
         decode_rows(idx[:, 1:2], row, np.zeros((2, 4))[:, 1:2])
+    window_summary(whole[:, 0], 4, True, 1.0)
+    frame_sums(np.zeros((2, 7)), 2, 1)
     for out in (np.empty((2, 2)), np.empty((2, 2), dtype=np.float32)):  # (device buffers)
         monitor_block(whole, whole, 0.0, -1.0, 1.0, 1.0, 0.5, out)

@@ -358,8 +358,12 @@ class Encoder(Node):
         self.ref[ch] = snap
         self.last_design[ch] = snap.at_sample
 
+    # 16-bit input: the 65,536-entry table pays for itself on long stretches only;
+    # an adaptive codebook that codes one hop (a few thousand samples) searches
+    LUT_FROM = 16_384
+
     def _encode(self, cb, x: np.ndarray) -> np.ndarray:
-        if self.int16:
+        if self.int16 and x.shape[0] >= self.LUT_FROM:
             return cb.encode_int16((x * 32768.0).astype(np.int16))
         return cb.encode(x)
 

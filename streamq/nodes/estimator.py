@@ -50,6 +50,19 @@ def window_histogram(x: np.ndarray, bins: int, span: str, weights: np.ndarray | 
     return centers, counts
 
 
+def _summary(x: np.ndarray, bins: int, span: str) -> tuple[np.ndarray, np.ndarray, dict]:
+    """``window_histogram`` and ``window_stats`` of an unweighted window, in one
+    compiled pass pair (streamq.design.kernels.window_summary)."""
+    from streamq.design.kernels import window_summary
+    counts, lo, width, mean, var, m4, peak, clipped = window_summary(
+        x, bins, span != "full-scale", CLIP_LEVEL)
+    rms = float(np.sqrt(var + mean * mean))
+    stats = {"mean": mean, "variance": var, "kurtosis": m4 / (var * var) if var > 0 else 0.0,
+             "crest_db": 20.0 * np.log10(peak / rms) if rms > 0 and peak > 0 else 0.0,
+             "peak": peak, "clipped": int(clipped), "samples": int(x.shape[0])}
+    return lo + (np.arange(bins) + 0.5) * width, counts, stats
+
+
 def window_stats(x: np.ndarray, weights: np.ndarray | None = None) -> dict[str, float]:
     """Mean, variance, kurtosis (plain, 3 for a Gaussian), crest factor in dB,
     peak and clipped-sample count of a window."""
@@ -172,8 +185,12 @@ def snapshot_job(t: int, win: np.ndarray, params: dict, last: list) -> list[PdfS
     out = []
     for ch in range(win.shape[1]):
         x = win[:, ch]
-        centers, counts = window_histogram(x, params["bins"], params["span"], weights)
-        stats = window_stats(x, weights)
+        if weights is None and have:   # one compiled two-pass summary
+            centers, counts, stats = _summary(np.ascontiguousarray(x), params["bins"],
+                                              params["span"])
+        else:
+            centers, counts = window_histogram(x, params["bins"], params["span"], weights)
+            stats = window_stats(x, weights)
         model = fit_model(params["fit"], centers, counts) if params["fit"] != "none" else None
         prev = last[ch]
         drift = js_drift(prev.centers, prev.counts, centers, counts) if prev is not None else None

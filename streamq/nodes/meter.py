@@ -291,13 +291,10 @@ class ErrorMeter(Node):
         C, F = self.C, self.F
         K = buf.shape[0] // F
         frame_ver = buf[F - 1:K * F:F, 3 * C]   # version in force at each frame's last sample
-        body = buf[:K * F]
-        r, e, ov = body[:, :C], body[:, C:2 * C], body[:, 2 * C:3 * C]
-        e2 = e * e
-        # per-frame sums (K, C); reduceat adds each frame's rows in order, so a
+        # per-frame sums (K, 4C), each frame's rows added in order (compiled), so a
         # frame's sum does not depend on how the stream was cut into blocks
-        starts = np.arange(0, K * F, F)
-        sums = np.add.reduceat(np.concatenate([r * r, e2, e2 * ov, ov], axis=1), starts, axis=0)
+        from streamq.design.kernels import frame_sums
+        sums = frame_sums(np.ascontiguousarray(buf[:K * F]), C, F)
         sig, noi, ovn, ovc = sums[:, :C], sums[:, C:2 * C], sums[:, 2 * C:3 * C], sums[:, 3 * C:]
         self.sig = _seq_sum(self.sig, sig)
         self.noi = _seq_sum(self.noi, noi)

@@ -345,7 +345,7 @@ class PdfEstimator(Node):
                 # live runs: the worker computes the snapshot from a copy of the
                 # window; it travels with the first block after it is ready. A
                 # worker that falls behind skips hops instead of piling them up.
-                if len(self.jobs) >= 2:
+                if sum(1 for f in self.jobs if not f.done()) >= 2:
                     self.skipped += 1
                     continue
                 fut = self.ctx.offload(hop_job, t, self._window(min(self.W, t)), self.params,

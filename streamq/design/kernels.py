@@ -211,6 +211,53 @@ def frame_sums(rows, C, F):  # pragma: no cover - compiled
     return out
 
 
+@njit(cache=True, nogil=True)
+def _hist_edges(c):  # pragma: no cover - compiled
+    n = c.shape[0]
+    e = np.empty(n + 1)
+    if n < 2:
+        e[0] = c[0] - 0.5e-6
+        e[1] = c[0] + 0.5e-6
+        return e
+    w = c[1] - c[0]
+    for i in range(n):
+        e[i] = c[i] - 0.5 * w
+    e[n] = c[n - 1] + 0.5 * w
+    return e
+
+
+@njit(cache=True, nogil=True)
+def js_divergence(c1, n1, c2, n2, points):  # pragma: no cover - compiled
+    """Jensen-Shannon divergence (bits) of two histograms (bin centers, counts)
+    that may sit on different uniform grids: both are moved onto one common
+    grid of ``points`` cells by linear interpolation of their cumulative counts.
+    """
+    e1 = _hist_edges(c1)
+    e2 = _hist_edges(c2)
+    grid = np.linspace(min(e1[0], e2[0]), max(e1[-1], e2[-1]), points + 1)
+    z1 = np.zeros(n1.shape[0] + 1)
+    z1[1:] = np.cumsum(n1)
+    z2 = np.zeros(n2.shape[0] + 1)
+    z2[1:] = np.cumsum(n2)
+    p = np.diff(np.interp(grid, e1, z1))
+    q = np.diff(np.interp(grid, e2, z2))
+    sp = p.sum()
+    sq = q.sum()
+    if sp > 0:
+        p = p / sp
+    if sq > 0:
+        q = q / sq
+    kp = 0.0
+    kq = 0.0
+    for i in range(points):
+        m = 0.5 * (p[i] + q[i])
+        if p[i] > 0:
+            kp += p[i] * np.log2(p[i] / m)
+        if q[i] > 0:
+            kq += q[i] * np.log2(q[i] / m)
+    return max(0.0, 0.5 * (kp + kq))
+
+
 def warm_up() -> None:
     """Compile (or load from the disk cache) every kernel for the array types
     the live nodes pass, so no compilation happens inside an audio callback:

@@ -150,24 +150,10 @@ def js_drift(c1: np.ndarray, n1: np.ndarray, c2: np.ndarray, n2: np.ndarray, poi
     """Jensen-Shannon divergence (bits, 0..1) between two histograms that may
     sit on different bin grids: both are moved onto one common grid of
     ``points`` cells through their cumulative counts."""
-    def edges(c):
-        if len(c) < 2:
-            return np.array([c[0] - 0.5e-6, c[0] + 0.5e-6])
-        w = c[1] - c[0]
-        return np.concatenate([c - 0.5 * w, [c[-1] + 0.5 * w]])
-    e1, e2 = edges(c1), edges(c2)
-    grid = np.linspace(min(e1[0], e2[0]), max(e1[-1], e2[-1]), points + 1)
-    cum1 = np.interp(grid, e1, np.concatenate([[0.0], np.cumsum(n1)]))
-    cum2 = np.interp(grid, e2, np.concatenate([[0.0], np.cumsum(n2)]))
-    p = np.diff(cum1)
-    q = np.diff(cum2)
-    p = p / p.sum() if p.sum() > 0 else p
-    q = q / q.sum() if q.sum() > 0 else q
-    m = 0.5 * (p + q)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        kp = np.where(p > 0, p * np.log2(p / m), 0.0).sum()
-        kq = np.where(q > 0, q * np.log2(q / m), 0.0).sum()
-    return float(max(0.0, 0.5 * (kp + kq)))
+    from streamq.design.kernels import js_divergence   # compiled: one call per hop
+    f = np.float64
+    return float(js_divergence(np.asarray(c1, f), np.asarray(n1, f), np.asarray(c2, f),
+                               np.asarray(n2, f), int(points)))
 
 
 def snapshot_job(t: int, win: np.ndarray, params: dict, last: list) -> list[PdfSnapshot]:

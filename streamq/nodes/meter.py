@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import csv
 import math
+from array import array
 from typing import Literal
 
 import numpy as np
@@ -33,6 +34,40 @@ class MeterConfig(NodeConfig):
                                                               "(rounded to whole frames)")
     spectrum_size: int = Field(2048, ge=64, le=65_536, description="Welch segment length, samples "
                                                                    "(Hann window, no overlap)")
+
+
+SERIES_COLUMNS = ("time_s", "samples", "snr_db", "segsnr_db", "signal_dbfs", "noise_dbfs",
+                  "overload_fraction", "codebook_updates", "side_info_bits", "codebook_version")
+_WHOLE = frozenset({"samples", "codebook_updates", "side_info_bits", "codebook_version"})
+
+
+class Series:
+    """The meter's time series (one row per series window), kept as columns of
+    floats: hours of audio make tens of thousands of rows, which as dicts of
+    Python numbers would cost a kilobyte each. None is kept as NaN."""
+
+    def __init__(self):
+        self.cols = {c: array("d") for c in SERIES_COLUMNS}
+        self.n = 0
+
+    def append(self, row: dict) -> None:
+        for c in SERIES_COLUMNS:
+            v = row[c]
+            self.cols[c].append(math.nan if v is None else v)
+        self.n += 1      # last: a reader on another thread sees whole rows only
+
+    def row(self, i: int) -> dict:
+        out = {}
+        for c in SERIES_COLUMNS:
+            v = self.cols[c][i]
+            out[c] = None if v != v else (int(v) if c in _WHOLE else v)
+        return out
+
+    def __len__(self) -> int:
+        return self.n
+
+    def __iter__(self):
+        return (self.row(i) for i in range(self.n))
 
 
 def _seq_sum(acc: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -95,7 +130,7 @@ class ErrorMeter(Node):
         self.peak = 0.0
         self.frames_in = FrameCollector(self.F, 3 * C + 1)
         # series
-        self.rows: list[dict] = []
+        self.rows = Series()
         self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
         self.win_events: dict[int, list[int]] = {}
         # spectra
@@ -402,9 +437,7 @@ class ErrorMeter(Node):
         base = self.out_dir / self.id
         try:
             with open(f"{base}-series.csv", "w", newline="") as f:
-                cols = ["time_s", "samples", "snr_db", "segsnr_db", "signal_dbfs", "noise_dbfs",
-                        "overload_fraction", "codebook_updates", "side_info_bits", "codebook_version"]
-                w = csv.DictWriter(f, fieldnames=cols)
+                w = csv.DictWriter(f, fieldnames=SERIES_COLUMNS)
                 w.writeheader()
                 for row in self.rows:
                     w.writerow({k: ("" if v is None else (f"{v:.6g}" if isinstance(v, float) else v))
@@ -426,7 +459,8 @@ class ErrorMeter(Node):
     def live_stats(self) -> dict:
         """Running figures for the live terminal meter (read from another thread:
         only plain attribute reads)."""
-        last = self.rows[-1] if self.rows else {}
+        n = len(self.rows)
+        last = self.rows.row(n - 1) if n else {}
         L = self.levels_seen
         fixed = math.ceil(math.log2(L)) if L else None
         side = self.side_bits / (self.t * self.C) if self.t else 0.0

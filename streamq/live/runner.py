@@ -57,10 +57,14 @@ def _device(sd, node, direction: str, channels: int):
 
 
 def _warm_worker() -> None:
-    """Import the design code in the worker process before the stream starts."""
+    """Import the design code and load the compiled kernels in the worker process
+    before the stream starts (loading them takes a second or more: at the first
+    hop it would make the first designs late and skip hops)."""
     import streamq.design  # noqa: F401
     import streamq.nodes.encoder  # noqa: F401
     import streamq.nodes.estimator  # noqa: F401
+    from streamq.design.kernels import warm_up
+    warm_up()
 
 
 def make_workers() -> tuple[ProcessPoolExecutor, ThreadPoolExecutor]:

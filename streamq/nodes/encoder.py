@@ -393,8 +393,7 @@ class Encoder(Node):
         with the codebooks in force; a codebook that falls due inside the block
         re-encodes its channel from that sample on."""
         out = np.empty((frames, self.C), dtype=self.dtype)
-        th = self.th_rows if self.th_rows is not None else self._stack_thresholds()
-        self.kernel(x, th, out)
+        self.kernel(x, self.th_rows, out)
         jobs = self.jobs
         if not jobs or jobs[0][3] is None:
             return Packet(IndexBlock(out, s, self.rate, tuple(((s, v),) for v in self.in_force)))
@@ -419,7 +418,8 @@ class Encoder(Node):
         pkt = inputs["input"]
         s, e = pkt.block.start, pkt.block.start + frames
         x = pkt.block.data
-        if self.fast_live and not self.pending:
+        if self.fast_live and not self.pending and (self.th_rows is not None
+                                                    or self._stack_thresholds() is not None):
             return self._live_step(s, e, x, frames)
         if self._steady():
             out = np.empty((frames, self.C), dtype=self.dtype)

@@ -265,8 +265,6 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
             raise StreamqError(f"cannot open the audio stream at {rate} Hz, block {block}: "
                                f"{str(exc).splitlines()[0]} (choose a supported sample_rate or "
                                f"device; see `streamq devices`)") from None
-        conditions = realtime_conditions()
-        conditions.__enter__()
         meter = _terminal_meter(args)
         interrupted = False
         stalled = False
@@ -279,6 +277,8 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
             old_term = signal.signal(signal.SIGTERM, on_term)
         except ValueError:  # not the main thread
             pass
+        conditions = realtime_conditions()
+        conditions.__enter__()      # left in the `finally` below
         try:
             run.chain.start()
             stream.start()

@@ -75,6 +75,8 @@ FAILED = object()   # a live job whose worker call raised
 def _versions(s: int, at_start, events) -> tuple:
     """IndexBlock.versions of a block from ``s``: per channel, the version in
     force at ``s`` (unless replaced right there) and each announcement's."""
+    if not events:     # the common case, kept cheap: it runs in the audio callback
+        return tuple([((s, v),) for v in at_start])
     return tuple(
         tuple([(s, at_start[ch])] * (not any(u.at_sample == s and u.channel == ch for u in events))
               + [(u.at_sample, u.version) for u in events if u.channel == ch])
@@ -315,7 +317,7 @@ class Encoder(Node):
             raise self.fail("train", problem)
         return x
 
-    def _announce(self, t: int, ch: int, cb, bits: int, version: int | None = None) -> CodebookUpdate:
+    def _announce(self, t: int, ch: int, cb, bits: int, version: int | None = None) -> None:
         """Put ``cb`` in force on channel ``ch`` from sample ``t`` and queue its
         announcement. ``version``: given when ``cb`` already carries it (live
         designs are numbered when delivered)."""
@@ -329,12 +331,10 @@ class Encoder(Node):
         self.current[ch] = cb
         self.th_rows = None
         self.in_force[ch] = v
-        u = CodebookUpdate(v, t, ch, np.asarray(cb.thresholds), np.asarray(cb.levels), bits,
-                           self.config.method)
-        self.pending.append(u)
+        self.pending.append(CodebookUpdate(v, t, ch, np.asarray(cb.thresholds),
+                                           np.asarray(cb.levels), bits, self.config.method))
         self.updates += 1
         self.side_bits += bits
-        return u
 
     # -- adaptive designs -----------------------------------------------------
     def _consider(self, snap) -> bool:
@@ -396,7 +396,7 @@ class Encoder(Node):
         self.kernel(x, self.th_rows, out)
         jobs = self.jobs
         if not jobs or jobs[0][3] is None:
-            return Packet(IndexBlock(out, s, self.rate, tuple(((s, v),) for v in self.in_force)))
+            return Packet(IndexBlock(out, s, self.rate, _versions(s, self.in_force, ())))
         at_start = list(self.in_force)
         self._live_designs(s, e, None)
         events, self.pending = self.pending, []
@@ -425,7 +425,7 @@ class Encoder(Node):
             out = np.empty((frames, self.C), dtype=self.dtype)
             for ch, cb in enumerate(self.current):
                 out[:, ch] = self._encode(cb, x[:, ch])
-            return Packet(IndexBlock(out, s, self.rate, tuple(((s, v),) for v in self.in_force)))
+            return Packet(IndexBlock(out, s, self.rate, _versions(s, self.in_force, ())))
         x = self.delay_line.push(x)
         out = np.empty((frames, self.C), dtype=self.dtype)
         at_start = list(self.in_force)
@@ -484,7 +484,7 @@ class Encoder(Node):
                 if pos < e:
                     out[pos - s:, ch] = self._encode(cur, x[pos - s:, ch])
         if not self.pending:     # the common case: no announcements in this block
-            return Packet(IndexBlock(out, s, self.rate, tuple(((s, v),) for v in at_start)))
+            return Packet(IndexBlock(out, s, self.rate, _versions(s, at_start, ())))
         # announcements travel with the packet that holds their first sample
         events = [u for u in self.pending if u.at_sample < e]
         self.pending = [u for u in self.pending if u.at_sample >= e]

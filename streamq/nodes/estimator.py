@@ -46,8 +46,25 @@ def window_histogram(x: np.ndarray, bins: int, span: str, weights: np.ndarray | 
     idx = ((x - lo) * (1.0 / width)).astype(np.int64)
     np.clip(idx, 0, bins - 1, out=idx)
     counts = np.bincount(idx, weights=weights, minlength=bins).astype(np.float64)
-    centers = lo + (np.arange(bins) + 0.5) * width
-    return centers, counts
+    return _centers(lo, width, bins), counts
+
+
+def _centers(lo: float, width: float, bins: int) -> np.ndarray:
+    return lo + (np.arange(bins) + 0.5) * width
+
+
+def _stats(mean: float, var: float, m4: float, peak: float, clipped: int, n: int) -> dict:
+    """The statistics dict of a window from its moments (see window_stats)."""
+    rms = float(np.sqrt(var + mean * mean))
+    return {
+        "mean": mean,
+        "variance": var,
+        "kurtosis": m4 / (var * var) if var > 0 else 0.0,
+        "crest_db": 20.0 * np.log10(peak / rms) if rms > 0 and peak > 0 else 0.0,
+        "peak": peak,
+        "clipped": int(clipped),
+        "samples": int(n),
+    }
 
 
 def _summary(x: np.ndarray, bins: int, span: str) -> tuple[np.ndarray, np.ndarray, dict]:
@@ -56,11 +73,7 @@ def _summary(x: np.ndarray, bins: int, span: str) -> tuple[np.ndarray, np.ndarra
     from streamq.design.kernels import window_summary
     counts, lo, width, mean, var, m4, peak, clipped = window_summary(
         x, bins, span != "full-scale", CLIP_LEVEL)
-    rms = float(np.sqrt(var + mean * mean))
-    stats = {"mean": mean, "variance": var, "kurtosis": m4 / (var * var) if var > 0 else 0.0,
-             "crest_db": 20.0 * np.log10(peak / rms) if rms > 0 and peak > 0 else 0.0,
-             "peak": peak, "clipped": int(clipped), "samples": int(x.shape[0])}
-    return lo + (np.arange(bins) + 0.5) * width, counts, stats
+    return _centers(lo, width, bins), counts, _stats(mean, var, m4, peak, clipped, x.shape[0])
 
 
 def window_stats(x: np.ndarray, weights: np.ndarray | None = None) -> dict[str, float]:
@@ -79,17 +92,8 @@ def window_stats(x: np.ndarray, weights: np.ndarray | None = None) -> dict[str, 
         d2 = d * d
         var = float(np.dot(weights, d2) / wsum)
         m4 = float(np.dot(weights, d2 * d2) / wsum)
-    peak = float(np.max(np.abs(x)))
-    rms = float(np.sqrt(var + mean * mean))
-    return {
-        "mean": mean,
-        "variance": var,
-        "kurtosis": m4 / (var * var) if var > 0 else 0.0,
-        "crest_db": 20.0 * np.log10(peak / rms) if rms > 0 and peak > 0 else 0.0,
-        "peak": peak,
-        "clipped": int(np.count_nonzero(np.abs(x) >= CLIP_LEVEL)),
-        "samples": int(x.shape[0]),
-    }
+    return _stats(mean, var, m4, float(np.max(np.abs(x))),
+                  np.count_nonzero(np.abs(x) >= CLIP_LEVEL), x.shape[0])
 
 
 def fit_model(name: str, centers: np.ndarray, counts: np.ndarray) -> dict[str, float]:

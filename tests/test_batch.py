@@ -206,6 +206,21 @@ def test_summary_table_totals_weighted_by_samples(archive, local_run):
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.stat().st_size > 10_000
 
 
+def _assert_same_results(out: Path, reference: Path) -> None:
+    """The batch in ``out`` gave what the batch in ``reference`` gave: the same
+    files with the same status, equal meters in every per-file report.json,
+    the same errors for failed files and equal totals in summary.json."""
+    ref, got = _by_input(reference), _by_input(out)
+    assert set(ref) == set(got)
+    for inp, e in got.items():
+        assert e["status"] == ref[inp]["status"], (e, ref[inp])
+        if e["status"] == "done":
+            assert _report(e["folder"])["meters"] == _report(ref[inp]["folder"])["meters"], inp
+        else:
+            assert e["error"] == ref[inp]["error"]
+    assert _summary(out)["totals"] == _summary(reference)["totals"]
+
+
 def test_dask_cluster_gives_the_same_results(archive, local_run, tmp_path):
     distributed = pytest.importorskip("distributed")
     out = tmp_path / "out"
@@ -223,16 +238,27 @@ def test_dask_cluster_gives_the_same_results(archive, local_run, tmp_path):
         finally:
             engine.close()
     assert rc == 1, _summary(out)["counts"]
-    assert "Dask" in _summary(out)["engine"]
-    local, remote = _by_input(local_run), _by_input(out)
-    assert set(local) == set(remote)
-    for inp, e in remote.items():
-        assert e["status"] == local[inp]["status"], (e, local[inp])
-        if e["status"] == "done":
-            assert _report(e["folder"])["meters"] == _report(local[inp]["folder"])["meters"], inp
-        else:
-            assert e["error"] == local[inp]["error"]
-    assert _summary(out)["totals"] == _summary(local_run)["totals"]
+    assert "Dask cluster tcp://127.0.0.1:" in _summary(out)["engine"]
+    _assert_same_results(out, local_run)
+
+
+def test_cluster_local_n_gives_the_same_results(archive, local_run, tmp_path):
+    """--cluster local:2: the command starts its own Dask scheduler and two
+    worker processes on loopback, runs the archive there and stops them."""
+    pytest.importorskip("distributed")
+    import psutil  # a dependency of distributed
+    me = psutil.Process()
+    before = {c.pid for c in me.children(recursive=True)}
+    out = tmp_path / "out"
+    rc = batch_main(archive["graph"], "--inputs", archive["root"], "--out", out,
+                    "--cluster", "local:2", "--quiet")
+    assert rc == 1, _summary(out)["counts"]  # 1: finished, the corrupt file failed
+    # the scheduler and workers it started are gone again
+    left = [c for c in me.children(recursive=True) if c.pid not in before and c.is_running()
+            and c.status() != psutil.STATUS_ZOMBIE]
+    assert not left, [c.cmdline() for c in left]
+    assert _summary(out)["engine"] == "local Dask cluster (2 workers)"
+    _assert_same_results(out, local_run)
 
 
 def _done_markers(out: Path) -> list[Path]:

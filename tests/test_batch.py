@@ -340,7 +340,33 @@ def test_changed_input_is_redone(tmp_path):
     assert reports[str(c.resolve())].stat().st_mtime_ns == before[str(c.resolve())]
     assert _by_input(out)[str(a.resolve())]["samples"] == int(2.5 * RATE)
 
-    # A different setup (--set) is a different result: everything is redone.
+    before_snr = {}
+    for e in _summary(out)["files"]:  # 4 bits, as the graph says
+        noise = _report(e["folder"])["meters"]["noise"]
+        assert (noise["fixed_rate_bits"], noise["levels"]) == (4, 16), e["input"]
+        before_snr[e["input"]] = noise["snr_db"]
+
+    # A different setup (--set) is a different result: everything is redone,
+    # and each file's report.json holds the new figures (5 bits: 32 levels).
+    assert batch_main(*args, "--set", "enc.bits=5") == 0
+    s = _summary(out)
+    assert s["this_run"]["files_run"] == 3
+    assert s["overrides"] == ["enc.bits=5"]
+    for e in s["files"]:
+        rep = _report(e["folder"])
+        assert rep["complete"] is True
+        noise = rep["meters"]["noise"]
+        assert (noise["fixed_rate_bits"], noise["levels"]) == (5, 32), e["input"]
+        assert rep["nodes"]["enc"]["levels"] == 32
+        assert e["meters"]["noise"]["fixed_rate_bits"] == 5  # the summary row too
+        # one more bit: about 6 dB more SNR (common practice: the 6.02 dB-per-bit rule,
+        # Jayant & Noll, Digital Coding of Waveforms, 1984); half of it is ample margin
+        assert e["meters"]["noise"]["snr_db"] > before_snr[e["input"]] + 3
+    assert batch_main(*args, "--set", "enc.bits=5") == 0
+    assert _summary(out)["this_run"]["files_run"] == 0  # same setup again: nothing redone
+
+    # Any edit of the graph file's text is a new setup too, even a comment.
+    graph.write_text(CHAIN + "# checked again\n")
     assert batch_main(*args, "--set", "enc.bits=5") == 0
     assert _summary(out)["this_run"]["files_run"] == 3
 

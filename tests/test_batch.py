@@ -15,6 +15,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -404,6 +405,64 @@ def test_files_run_in_threads_of_one_process(tmp_path):
     for i in range(4):
         assert (_report(tmp_path / "together" / str(i))["meters"]
                 == _report(tmp_path / "alone" / str(i))["meters"])
+
+
+# -- progress -------------------------------------------------------------------------
+
+BATCH_BAR = re.compile(r"^archive-check: (\d+)/(\d+) files, ([\d.]+) s audio"
+                       r"(?:, ([\d.,]+)x real time)? \|.*\| \[[\d:]+, [\d:?]+ left\]$")
+
+
+def _progress_archive(tmp_path: Path) -> tuple[Path, Path, list[float]]:
+    lengths = [1.0, 1.5, 2.0, 2.5, 3.0]  # seconds; file names sort in this order
+    for i, secs in enumerate(lengths):
+        _write(tmp_path / "in" / f"desk-{i}.wav", secs, 50 + i)
+    graph = tmp_path / "chain.toml"
+    graph.write_text(CHAIN)
+    return graph, tmp_path / "in", lengths
+
+
+def test_progress_bar_on_a_terminal(tmp_path):
+    """On a terminal the bar reads 'N/M files, A s audio, Sx real time': files
+    done out of all, the audio of the files done so far and the speed; it is
+    cleared before the summary lines."""
+    from test_progress import run_on_pty  # the pty helper of `streamq run`'s bar tests
+    graph, inputs, lengths = _progress_archive(tmp_path)
+    code, text = run_on_pty([sys.executable, "-m", "streamq.cli", "batch", str(graph),
+                             "--inputs", str(inputs), "--out", str(tmp_path / "out"),
+                             "--workers", "1"], tmp_path)
+    assert code == 0, text
+    frames = [f.rstrip() for f in re.split(r"[\r\n]", text) if " files, " in f]
+    assert frames, f"no progress bar in: {text!r}"
+    seen = []
+    for f in frames:
+        m = BATCH_BAR.match(f)
+        assert m, f
+        n, total, audio = int(m.group(1)), int(m.group(2)), float(m.group(3))
+        assert total == len(lengths)
+        # one worker takes the files in order: the audio is that of the first n files
+        assert audio == pytest.approx(sum(lengths[:n]), abs=0.051), f
+        assert (m.group(4) is None) == (n == 0), f  # a speed once something is done
+        seen.append(n)
+    assert seen == sorted(seen) and seen[0] == 0 and seen[-1] >= 1, seen
+    tail = text[text.rindex("archive-check: 5 of 5 files done"):]
+    assert " files, " not in tail and "|" not in tail  # bar cleared, summary on clean lines
+
+
+def test_no_progress_off_a_terminal_or_with_quiet(tmp_path):
+    """Like `streamq run`: no bar, and no progress lines instead, when stderr is
+    not a terminal (a log) or with --quiet."""
+    from test_progress import run_on_pty
+    graph, inputs, _ = _progress_archive(tmp_path)
+    r = batch_cli(graph, "--inputs", inputs, "--out", tmp_path / "piped", "--workers", "1")
+    assert r.returncode == 0, r.stderr
+    assert r.stderr == ""
+    assert r.stdout.startswith("archive-check: 5 of 5 files done") and " files, " not in r.stdout
+    code, text = run_on_pty([sys.executable, "-m", "streamq.cli", "batch", str(graph),
+                             "--inputs", str(inputs), "--out", str(tmp_path / "quiet"),
+                             "--workers", "1", "--quiet"], tmp_path)
+    assert code == 0, text
+    assert text.strip() == ""
 
 
 # -- bad input: one clear line, exit 2 ----------------------------------------------

@@ -75,8 +75,26 @@ def _speed(x: float) -> str:
 
 
 class BatchProgress:
-    """Files done / total, audio hours processed and speed as a multiple of real
-    time (tqdm on stderr; nothing when quiet or stderr is not a terminal)."""
+    """The batch's progress bar: files done / total, audio processed and speed as
+    a multiple of real time.
+
+    It is drawn with tqdm on stderr, reading for example
+    ``archive: 4/6 files, 12.5 s audio, 3.9x real time |####  | [00:02, 00:01 left]``
+    (audio in s, min or h as :func:`audio_duration` gives it). Like the bar of
+    ``streamq run``, nothing is shown when ``quiet`` or when stderr is not a
+    terminal: logs get the summary lines at the end, not a progress trace.
+
+    Parameters
+    ----------
+    total : int
+        Number of input files.
+    initial : int
+        Files already done by an earlier run (counted as done from the start).
+    quiet : bool
+        No bar at all.
+    label : str
+        Shown before the counts (the graph's name).
+    """
 
     def __init__(self, total: int, initial: int, quiet: bool, label: str):
         self.bar = None
@@ -89,14 +107,15 @@ class BatchProgress:
                         dynamic_ncols=True,
                         bar_format="{desc}: {n_fmt}/{total_fmt} files{postfix} |{bar}| "
                                    "[{elapsed}, {remaining} left]")
-        self.bar.set_postfix_str("0.00 h audio", refresh=True)
+        self.bar.set_postfix_str(f"{audio_duration(0.0)} audio", refresh=True)
 
     def file_done(self, audio_seconds: float) -> None:
+        """Count one more file finished (or failed, with ``audio_seconds`` 0)."""
         self.audio += audio_seconds
         if self.bar is None:
             return
         elapsed = max(time.perf_counter() - self.t0, 1e-9)
-        self.bar.set_postfix_str(f"{self.audio / 3600:.2f} h audio, "
+        self.bar.set_postfix_str(f"{audio_duration(self.audio)} audio, "
                                  f"{_speed(self.audio / elapsed)} real time", refresh=False)
         self.bar.update(1)
 

@@ -372,6 +372,62 @@ def test_changed_input_is_redone(tmp_path):
     assert _summary(out)["this_run"]["files_run"] == 3
 
 
+PAGES = {"noise-codebooks.png", "noise-snr.png", "noise-spectrum.png", "report.html"}
+
+
+def test_pages_option_writes_what_streamq_run_writes(tmp_path):
+    """--pages adds each file's plots and report.html (as `streamq run` writes
+    them); a re-run with --pages adds them to finished files without running
+    the files again; a re-run that redoes a file without --pages removes the
+    pages that no longer match its results."""
+    a = _write(tmp_path / "calls" / "call-a.wav", 1.0, 61)
+    graph = tmp_path / "chain.toml"
+    graph.write_text(CHAIN)
+    out = tmp_path / "out"
+    args = [graph, "--inputs", a, "--out", out, "--workers", "1", "--quiet"]
+
+    def names(folder) -> set[str]:
+        return {p.name for p in Path(folder).iterdir()}
+
+    assert batch_main(*args) == 0
+    first = _summary(out)
+    assert first["pages"] is False
+    held = {"report.json", "batch.json", "noise-series.csv", "noise-spectrum.csv", "decoded.flac"}
+    for e in first["files"]:
+        assert names(e["folder"]) == held  # what the README lists, without --pages
+
+    stamps = {e["input"]: (Path(e["folder"]) / "report.json").stat().st_mtime_ns
+              for e in first["files"]}
+    assert batch_main(*args, "--pages") == 0
+    s = _summary(out)
+    assert s["this_run"]["files_run"] == 0 and s["this_run"]["pages_only"] == 1
+    for e in s["files"]:
+        assert names(e["folder"]) == held | PAGES
+        assert (Path(e["folder"]) / "report.json").stat().st_mtime_ns == stamps[e["input"]]
+        page = (Path(e["folder"]) / "report.html").read_text()
+        snr = _report(e["folder"])["meters"]["noise"]["snr_db"]
+        assert "data:image/png;base64," in page and f"<td>{snr:.2f}</td>" in page
+    assert batch_main(*args, "--pages") == 0
+    assert _summary(out)["this_run"]["pages_only"] == 0  # nothing left to add
+
+    # The same file names as a plain `streamq run` of the graph on one file.
+    single = tmp_path / "single"
+    assert cli_main(["run", str(graph), "--set", f'feed.path="{a.as_posix()}"',
+                     "--out", str(single), "--quiet"]) == 0
+    assert names(single) == held - {"batch.json"} | PAGES
+
+    # Redone without --pages: the old pages would describe 4-bit results.
+    assert batch_main(*args, "--set", "enc.bits=5") == 0
+    for e in _summary(out)["files"]:
+        assert names(e["folder"]) == held
+    # Redone with --pages: new pages, made in the same pass.
+    assert batch_main(*args, "--set", "enc.bits=6", "--pages") == 0
+    s = _summary(out)
+    assert s["this_run"]["files_run"] == 1 and s["this_run"]["pages_only"] == 0
+    for e in s["files"]:
+        assert names(e["folder"]) == held | PAGES
+
+
 def test_files_run_in_threads_of_one_process(tmp_path):
     """A Dask worker may run several files at once in threads: in a fresh process
     (node kinds not loaded yet), four files started together all complete and

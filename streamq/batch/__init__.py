@@ -2,7 +2,8 @@
 
 The graph's batch-input file-source (``[graph] batch_input``, or the graph's
 only file-source) is bound to each input file in turn; each file runs into
-its own folder under ``OUT/files/`` (report.json and the graph's outputs);
+its own folder under ``OUT/files/`` (report.json, batch.json, the meters' CSV
+files, the graph's outputs and, with ``--pages``, the plots and report.html);
 ``OUT/summary.csv``, ``OUT/summary.json`` and ``OUT/summary.png`` gather the
 results. Files run on a local process pool (all cores by default) or on a
 Dask cluster (``--cluster``); a re-run skips the files already done.
@@ -17,9 +18,12 @@ HELP_EPILOG = """\
 inputs: a folder (audio files below it, by extension), a glob pattern in quotes ('shows/**/*.flac'),
 an audio file, or a text file listing one path per line; --inputs may be repeated.
 
-Each file runs into OUT/files/<name>-<hash>/ (report.json, batch.json, the graph's outputs);
-OUT/summary.csv, OUT/summary.json and OUT/summary.png gather them. A re-run skips files whose
-report is complete and whose input (size, modification time) and graph setup are unchanged.
+Each file runs into OUT/files/<name>-<hash>/: report.json, batch.json (this file's batch record),
+the meters' <meter>-series.csv and <meter>-spectrum.csv, the graph's outputs (sinks' relative
+paths) and, with --pages, the plots and report.html that streamq run writes. OUT/summary.csv,
+OUT/summary.json and OUT/summary.png gather them. A re-run skips files whose report is complete
+and whose input (size, modification time) and graph setup are unchanged; with --pages it also
+adds the plots and report.html to finished files that lack them, without running them again.
 
 --cluster tcp://HOST:PORT runs on a Dask scheduler there (its workers must see the graph, the
 inputs and OUT at the same paths, and have streamq installed); --cluster local:N starts N local
@@ -46,6 +50,9 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
                    help="run on Dask: tcp://HOST:PORT of a scheduler, or local:N")
     p.add_argument("--set", dest="overrides", action="append", default=[],
                    metavar="NODE.FIELD=VALUE", help="override a graph field (repeatable)")
+    p.add_argument("--pages", action="store_true",
+                   help="also write each file's plots and report.html, as streamq run does "
+                        "(off by default: they cost more time than a short file's run)")
     p.add_argument("--quiet", action="store_true", help="no progress bar and no summary lines")
     p.set_defaults(func=run)
     return p

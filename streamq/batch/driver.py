@@ -21,7 +21,7 @@ from typing import Any
 
 from streamq.batch.inputs import expand_inputs, folder_name
 from streamq.batch.summary import audio_duration, file_entry, write_summary
-from streamq.batch.work import is_done, one_line, setup_key
+from streamq.batch.work import is_done, needs_pages, one_line, setup_key
 from streamq.engine.graph import Graph, parse_graph
 from streamq.errors import StreamqError
 
@@ -191,6 +191,7 @@ def run_batch(args) -> int:
     out = prepare_out_dir(Path(args.out).expanduser()).resolve()
     inputs = expand_inputs(list(args.inputs), exclude=out)
     quiet = bool(getattr(args, "quiet", False))
+    pages = bool(getattr(args, "pages", False))
 
     setup = setup_key(text, overrides, node)
     files_dir = out / "files"
@@ -198,22 +199,26 @@ def run_batch(args) -> int:
     stop_file = out / f".stop-{run_id}"
     states: dict[str, dict[str, Any]] = {}
     jobs: list[dict[str, Any]] = []
+    page_jobs: list[dict[str, Any]] = []  # --pages for files an earlier run finished
     for inp in inputs:
         folder = files_dir / folder_name(inp)
+        job = {"graph_text": text, "graph_file": str(graph_path), "overrides": overrides,
+               "node": node, "input": str(inp), "folder": str(folder), "setup": setup,
+               "stop_file": str(stop_file), "run_id": run_id, "pages": pages}
         if is_done(folder, inp, setup):
             states[str(inp)] = {"status": "done", "error": None, "reused": True,
                                 "folder": str(folder)}
+            if pages and needs_pages(folder):
+                page_jobs.append({**job, "pages_only": True})
             continue
         states[str(inp)] = {"status": "not run", "error": None, "reused": False,
                             "folder": str(folder)}
-        jobs.append({"graph_text": text, "graph_file": str(graph_path), "overrides": overrides,
-                     "node": node, "input": str(inp), "folder": str(folder), "setup": setup,
-                     "stop_file": str(stop_file), "run_id": run_id})
+        jobs.append(job)
     reused = len(inputs) - len(jobs)
 
     with _StopRequests() as stop:
-        run = _run_jobs(jobs, states, args, stop, BatchProgress(len(inputs), reused, quiet,
-                                                                graph.name), stop_file)
+        run = _run_jobs(jobs + page_jobs, states, args, stop,
+                        BatchProgress(len(inputs), reused, quiet, graph.name), stop_file)
         stop.hard = False  # from here on a Ctrl-C changes nothing: finish the summary
         for inp in inputs:  # finished, but not heard of before a hard stop
             st = states[str(inp)]
@@ -230,8 +235,9 @@ def run_batch(args) -> int:
                 "overrides": overrides, "engine": run["engine"], "out_dir": str(out),
                 "complete": counts.get("done", 0) == len(entries), "files_total": len(entries),
                 "counts": counts, "reused": reused, "audio_seconds_done": done_audio,
-                "this_run": {"files_run": len(jobs), "audio_seconds": run["audio"],
-                             "wall_seconds": run["wall"]}}
+                "pages": pages,
+                "this_run": {"files_run": len(jobs), "pages_only": len(page_jobs),
+                             "audio_seconds": run["audio"], "wall_seconds": run["wall"]}}
         paths = write_summary(out, head, entries)
         failed = [e for e in entries if e["status"] == "failed"]
         # A stop that came after the last file finished changed nothing.
@@ -277,7 +283,13 @@ class _StopRequests:
 def _run_jobs(jobs, states, args, stop: _StopRequests, bar: BatchProgress,
               stop_file: Path) -> dict[str, Any]:
     """Run ``jobs`` on the chosen engine, updating ``states``; returns the engine's
-    name, the audio seconds done and the wall time."""
+    name, the audio seconds done and the wall time.
+
+    Jobs marked ``pages_only`` (plots and report.html for files an earlier run
+    finished) leave the file's state and the progress counts alone; any of
+    their problems, like those of ``--pages`` for files run now, become
+    warning lines.
+    """
     from streamq.batch.engines import make_engine
     engine = None
     engine_name = "none (every file already done)"
@@ -320,6 +332,13 @@ def _run_jobs(jobs, states, args, stop: _StopRequests, bar: BatchProgress,
                     continue
                 received += 1
                 res = _result_of(job, fut)
+                for w in res.get("page_warnings") or []:
+                    bar.note(f"streamq: warning: {job['input']}: {w}")
+                if job.get("pages_only"):
+                    if res["status"] == "failed":
+                        bar.note(f"streamq: warning: {job['input']}: plots and report.html not "
+                                 f"written ({res['error']})")
+                    continue
                 if stop.requests and res["status"] == "failed" and \
                         res["error"].startswith("worker failed"):
                     # workers that got the terminal's Ctrl-C too

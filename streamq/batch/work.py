@@ -6,7 +6,10 @@ outputs), and writes the folder's marker, ``batch.json``: the input's size
 and modification time as they were when the run started, a fingerprint of
 the graph setup, and how the run ended. A later batch skips the file when
 the marker says "done", the report is complete, and neither the input nor
-the setup has changed since.
+the setup has changed since. With ``pages`` set in the job, a finished file
+also gets the plots and report.html that ``streamq run`` writes
+(:func:`streamq.report.write_report_files`); a job with ``pages_only`` writes
+just those for a file finished earlier.
 
 Nothing here touches module-level state: a Dask worker may run several files
 at once in threads.
@@ -17,6 +20,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
 import signal
 import time
 import tomllib
@@ -107,6 +111,76 @@ def _remove(path: Path) -> None:
         pass
 
 
+PAGE = "report.html"
+_NODE_ID = re.compile(r"[A-Za-z0-9_-]+")
+
+
+def needs_pages(folder: Path) -> bool:
+    """Whether a finished file's folder lacks the plots and report.html of ``--pages``."""
+    return not (Path(folder) / PAGE).is_file()
+
+
+def write_pages(folder: Path, report: dict[str, Any]) -> list[str]:
+    """Write the plots and report.html of one file's run into its folder.
+
+    Parameters
+    ----------
+    folder : Path
+        The file's output folder (report.json and the meters' CSV files).
+    report : dict
+        The run's report, as in the folder's report.json.
+
+    Returns
+    -------
+    list of str
+        One line per plot or page that could not be written (empty when all
+        were). A failure here never changes the file's results or status.
+    """
+    problems: list[str] = []
+
+    def warn(what: str, exc: BaseException) -> None:
+        problems.append(f"{what} not written ({one_line(exc)})")
+
+    try:
+        from streamq.report import write_report_files
+        write_report_files(folder, report, warn=warn)
+    except Exception as exc:
+        warn("plots and report.html", exc)
+    return problems
+
+
+def _remove_pages(folder: Path) -> None:
+    """Remove the plots and report.html an earlier run of this folder wrote."""
+    from streamq.report import plot_names
+    old = read_json(folder / REPORT) or {}
+    meters = old.get("meters")
+    for mid in (meters if isinstance(meters, dict) else {}):
+        if isinstance(mid, str) and _NODE_ID.fullmatch(mid):  # node ids only: stay in the folder
+            for name in plot_names(mid).values():
+                _remove(folder / name)
+    _remove(folder / PAGE)
+
+
+def _pages_only(job: dict[str, Any]) -> dict[str, Any]:
+    """Plots and report.html for a file an earlier run finished (its results stay as they are)."""
+    inp, folder = Path(job["input"]), Path(job["folder"])
+    out: dict[str, Any] = {"input": str(inp), "folder": str(folder), "status": "not run",
+                           "error": None, "samples": 0, "audio_seconds": 0.0, "seconds": 0.0,
+                           "pages_only": True, "page_warnings": []}
+    if Path(job["stop_file"]).exists():
+        return out
+    t0 = time.perf_counter()
+    report = read_json(folder / REPORT)
+    if report is None:
+        out["page_warnings"] = [f"{folder / REPORT}: missing or unreadable; plots and "
+                                f"report.html not written"]
+    else:
+        out["page_warnings"] = write_pages(folder, report)
+    out["status"] = "done"
+    out["seconds"] = time.perf_counter() - t0
+    return out
+
+
 class _StopCheck:
     """Progress callback for run_offline: stops the run at the next step
     boundary once the batch's stop file exists (checked every STOP_POLL s)."""
@@ -130,14 +204,19 @@ def process_file(job: dict[str, Any]) -> dict[str, Any]:
     ----------
     job : dict with ``graph_text``, ``graph_file``, ``overrides``, ``node`` (the
         batch-input file-source), ``input``, ``folder`` (this file's output folder),
-        ``setup`` (see :func:`setup_key`) and ``stop_file``.
+        ``setup`` (see :func:`setup_key`) and ``stop_file``; optionally ``pages``
+        (also write the plots and report.html when the file is done) or
+        ``pages_only`` (write only those, for a file finished earlier).
 
     Returns
     -------
     dict with ``input``, ``folder``, ``status`` ("done", "failed", "interrupted"
     or "not run"), ``error`` (one line, or None), ``samples``, ``audio_seconds``,
-    ``seconds`` (wall time) and ``cpu_seconds`` (CPU time of the thread that ran it).
+    ``seconds`` (wall time) and ``cpu_seconds`` (CPU time of the thread that ran it);
+    with ``pages`` or ``pages_only``, ``page_warnings`` (a list of one-line problems).
     """
+    if job.get("pages_only"):
+        return _pages_only(job)
     t0, c0 = time.perf_counter(), time.thread_time()
     inp, folder = Path(job["input"]), Path(job["folder"])
     out: dict[str, Any] = {"input": str(inp), "folder": str(folder), "status": "not run",
@@ -148,8 +227,10 @@ def process_file(job: dict[str, Any]) -> dict[str, Any]:
     stamp = input_stamp(inp)
     try:
         folder.mkdir(parents=True, exist_ok=True)
-        # A stale marker or report must never make a new, unfinished run look done.
+        # A stale marker or report must never make a new, unfinished run look done,
+        # and an earlier run's plots and page must not sit beside new results.
         _remove(folder / MARKER)
+        _remove_pages(folder)
         _remove(folder / REPORT)
     except OSError as exc:
         out.update(status="failed", error=f"{folder}: cannot prepare the output folder "
@@ -166,6 +247,8 @@ def process_file(job: dict[str, Any]) -> dict[str, Any]:
                 out.update(status="failed", error=f"{inp}: the file changed during the run")
             else:
                 out["status"] = "done"
+                if job.get("pages"):
+                    out["page_warnings"] = write_pages(folder, result.report)
         else:
             out["status"] = "interrupted"
             out["error"] = f"stopped at sample {result.samples}"

@@ -207,6 +207,43 @@ def test_summary_table_totals_weighted_by_samples(archive, local_run):
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.stat().st_size > 10_000
 
 
+def test_two_meters_get_one_summary_plot_each(tmp_path):
+    """With more than one meter the SNR plot is summary-<meter>.png per meter
+    (no summary.png); the table has one row per file and meter and a total per meter."""
+    for i, secs in enumerate((1.0, 1.5)):
+        _write(tmp_path / "in" / f"reel-{i}.wav", secs, 70 + i)
+    graph = tmp_path / "two-meters.toml"
+    graph.write_text(CHAIN + """
+[nodes.enc3]
+use = "encoder"
+input = "feed"
+pdf = "stats"
+method = "lloyd-max"
+bits = 3
+adapt = "trailing"
+
+[nodes.dec3]
+use = "decoder"
+input = "enc3"
+
+[nodes.coarse]
+use = "error-meter"
+reference = "feed"
+input = "dec3"
+""")
+    out = tmp_path / "out"
+    assert batch_main(graph, "--inputs", tmp_path / "in", "--out", out, "--workers", "2",
+                      "--quiet") == 0
+    s = _summary(out)
+    assert s["plots"] == {"noise": "summary-noise.png", "coarse": "summary-coarse.png"}
+    assert not (out / "summary.png").exists()
+    for name in s["plots"].values():
+        assert (out / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert s["totals"]["coarse"]["snr_db"] < s["totals"]["noise"]["snr_db"]  # 3 bits < 4 bits
+    lines = (out / "summary.csv").read_text().splitlines()
+    assert len(lines) == 1 + 2 * 2 + 2  # header, file x meter, a total per meter
+
+
 def _assert_same_results(out: Path, reference: Path) -> None:
     """The batch in ``out`` gave what the batch in ``reference`` gave: the same
     files with the same status, equal meters in every per-file report.json,

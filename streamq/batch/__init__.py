@@ -4,8 +4,9 @@ The graph's batch-input file-source (``[graph] batch_input``, or the graph's
 only file-source) is bound to each input file in turn; each file runs into
 its own folder under ``OUT/files/`` (report.json, batch.json, the meters' CSV
 files, the graph's outputs and, with ``--pages``, the plots and report.html);
-``OUT/summary.csv``, ``OUT/summary.json`` and ``OUT/summary.png`` gather the
-results. Files run on a local process pool (all cores by default) or on a
+``OUT/summary.csv``, ``OUT/summary.json`` and the SNR plot (``OUT/summary.png``,
+or ``OUT/summary-<meter>.png`` per meter when the graph has several) gather
+the results. Files run on a local process pool (all cores by default) or on a
 Dask cluster (``--cluster``); a re-run skips the files already done.
 """
 
@@ -21,16 +22,20 @@ an audio file, or a text file listing one path per line; --inputs may be repeate
 Each file runs into OUT/files/<name>-<hash>/: report.json, batch.json (this file's batch record),
 the meters' <meter>-series.csv and <meter>-spectrum.csv, the graph's outputs (sinks' relative
 paths) and, with --pages, the plots and report.html that streamq run writes. OUT/summary.csv,
-OUT/summary.json and OUT/summary.png gather them. A re-run skips files whose report is complete
-and whose input (size, modification time) and graph setup are unchanged; with --pages it also
-adds the plots and report.html to finished files that lack them, without running them again.
+OUT/summary.json and OUT/summary.png (OUT/summary-<meter>.png per meter when the graph has
+several) gather them; the all-files SNR is pooled (total signal over total noise energy, files
+weighted by samples). A re-run skips files whose report is complete and whose input (size,
+modification time) and setup (the graph file's text, --set values) are unchanged; with --pages
+it also adds the plots and report.html to finished files that lack them, without running them
+again.
 
 --cluster tcp://HOST:PORT runs on a Dask scheduler there (its workers must see the graph, the
 inputs and OUT at the same paths, and have streamq installed); --cluster local:N starts N local
 Dask workers. Needs the optional extra: pip install 'streamq[cluster]'.
 
-exit status: 0 every file done, 1 some files failed (listed, and in the summary), 2 bad graph or
-options, 130 stopped by Ctrl-C (files finished so far are kept; run again to continue).
+exit status: 0 every file done, 1 some files failed (listed, and in the summary), 2 bad graph,
+inputs or options (or workers that cannot start or see the files), 130 stopped by Ctrl-C or
+SIGTERM (files finished so far are kept; run again to continue).
 """
 
 

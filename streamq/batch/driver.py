@@ -380,7 +380,7 @@ def _print_summary(head: dict[str, Any], paths: list[Path], stopped: bool) -> No
         def f(key, fmt="{:.2f}"):
             v = t.get(key)
             return "n/a" if v is None else fmt.format(v)
-        print(f"  {mid}: SNR {f('snr_db')} dB over all files (per file {f('snr_db_min')} to "
+        print(f"  {mid}: SNR {f('snr_db')} dB pooled over all files (per file {f('snr_db_min')} to "
               f"{f('snr_db_max')} dB, median {f('snr_db_median')}), segmental SNR "
               f"{f('segsnr_db')} dB, {f('bits_per_sample', '{:.3f}')} bits/sample")
     print(f"  summary: {', '.join(str(p) for p in paths)}")

@@ -202,7 +202,12 @@ def _short(name: str, n: int = 34) -> str:
 def plot_snr(path: Path, meter: str, entries: list[dict[str, Any]], total: dict[str, Any],
              title: str) -> bool:
     """SNR per file (left) and the distribution of per-file SNR (right) for one meter.
-    Returns False (and writes nothing) when no file has a finite SNR."""
+
+    Both panels mark the all-files SNR (``total["snr_db"]``: pooled, total signal
+    energy over total noise energy with files weighted by samples x channels,
+    labelled so) and the right one the median file's. Returns False (and writes
+    nothing) when no file has a finite SNR.
+    """
     done = [e for e in entries if e["status"] == "done" and meter in e["meters"]]
     names = [Path(e["input"]).name for e in done]
     dup = {nm for nm in names if names.count(nm) > 1}
@@ -224,6 +229,8 @@ def plot_snr(path: Path, meter: str, entries: list[dict[str, Any]], total: dict[
     fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(12, height), layout="constrained",
                                    gridspec_kw={"width_ratios": [1.25, 1]})
     pooled, median = total.get("snr_db"), total.get("snr_db_median")
+    # total signal energy over total noise energy, files weighted by samples x channels
+    pooled_label = None if pooled is None else f"all files, pooled by samples: {pooled:.2f} dB"
     if named:
         y = np.arange(n)[::-1]  # lowest SNR at the top
         ax1.plot(snr, y, "o", ms=6, color="#3b75af")
@@ -233,7 +240,7 @@ def plot_snr(path: Path, meter: str, entries: list[dict[str, Any]], total: dict[
         ax1.set_ylabel("file (lowest SNR at the top)")
         ax1.grid(axis="y", alpha=0.2)
         if pooled is not None:
-            ax1.axvline(pooled, color="#d1495b", ls="--", lw=1.2, label=f"all files: {pooled:.2f} dB")
+            ax1.axvline(pooled, color="#d1495b", ls="--", lw=1.2, label=pooled_label)
             # sorted points run from top left to bottom right: the top right is free
             ax1.legend(loc="upper right", fontsize=8, framealpha=0.9)
         lo, hi = float(snr.min()), float(snr.max())
@@ -245,7 +252,7 @@ def plot_snr(path: Path, meter: str, entries: list[dict[str, Any]], total: dict[
         ax1.set_xlabel("file rank (lowest SNR first)")
         ax1.set_ylabel("SNR (dB)")
         if pooled is not None:
-            ax1.axhline(pooled, color="#d1495b", ls="--", lw=1.2, label=f"all files: {pooled:.2f} dB")
+            ax1.axhline(pooled, color="#d1495b", ls="--", lw=1.2, label=pooled_label)
             ax1.legend(loc="lower right", fontsize=8, framealpha=0.9)
         ax1.grid(alpha=0.3)
     ax1.set_title("SNR per file", fontsize=10)
@@ -263,7 +270,7 @@ def plot_snr(path: Path, meter: str, entries: list[dict[str, Any]], total: dict[
     ax2.set_ylabel("files")
     ax2.yaxis.get_major_locator().set_params(integer=True)
     if pooled is not None:
-        ax2.axvline(pooled, color="#d1495b", ls="--", lw=1.2, label=f"all files: {pooled:.2f} dB")
+        ax2.axvline(pooled, color="#d1495b", ls="--", lw=1.2, label=pooled_label)
     if median is not None:
         ax2.axvline(median, color="#333333", ls=":", lw=1.2, label=f"median file: {median:.2f} dB")
     if pooled is not None or median is not None:

@@ -465,6 +465,27 @@ def test_pages_option_writes_what_streamq_run_writes(tmp_path):
         assert names(e["folder"]) == held | PAGES
 
 
+def test_a_plot_that_fails_is_a_warning_not_a_failed_file(tmp_path, capsys):
+    a = _write(tmp_path / "calls" / "call-a.wav", 1.0, 63)
+    graph = tmp_path / "chain.toml"
+    graph.write_text(CHAIN)
+    out = tmp_path / "out"
+    args = [graph, "--inputs", a, "--out", out, "--workers", "1", "--quiet"]
+    assert batch_main(*args) == 0
+    folder = Path(_summary(out)["files"][0]["folder"])
+    rep = _report(folder)
+    rep["meters"]["noise"]["codebooks"] = "not a list of codebooks"  # the plot cannot use it
+    (folder / "report.json").write_text(json.dumps(rep))
+    capsys.readouterr()
+    assert batch_main(*args, "--pages") == 0
+    err = [line for line in capsys.readouterr().err.splitlines() if line.strip()]
+    assert len(err) == 1, err
+    assert err[0].startswith(f"streamq: warning: {a.resolve()}: plot noise-codebooks.png not "
+                             f"written (")
+    assert _summary(out)["counts"] == {"done": 1}
+    assert {"report.html", "noise-snr.png"} <= {p.name for p in folder.iterdir()}
+
+
 def test_files_run_in_threads_of_one_process(tmp_path):
     """A Dask worker may run several files at once in threads: in a fresh process
     (node kinds not loaded yet), four files started together all complete and

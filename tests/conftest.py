@@ -90,6 +90,21 @@ def cli(*args: str | Path, cwd: Path | None = None, pythonpath: list[Path] = (),
                           timeout=timeout, stdin=subprocess.DEVNULL, **kw)
 
 
+#: Start of a ``python -c`` program for a child process: makes PortAudio unfindable, as
+#: on a machine without libportaudio2 (sounddevice looks the library up with
+#: ctypes.util.find_library and raises OSError).
+HIDE_PORTAUDIO = textwrap.dedent("""
+    import ctypes.util, sys
+    ctypes.util.find_library = lambda name: None
+""")
+
+#: ``python -c NO_PORTAUDIO ARGS``: the ``streamq`` command without PortAudio.
+NO_PORTAUDIO = HIDE_PORTAUDIO + textwrap.dedent("""
+    from streamq.cli import main
+    sys.exit(main(sys.argv[1:]))
+""")
+
+
 def error_lines(stderr: str) -> list[str]:
     """The non-empty lines of stderr."""
     return [line for line in stderr.splitlines() if line.strip()]

@@ -11,13 +11,14 @@ import resource
 import signal
 import subprocess
 import sys
+import textwrap
 import time
 
 import pytest
 import soundfile as sf
 
-from conftest import (DEMO, assert_names, cli, cli_env, digest, error_lines, make_audio,
-                      write_graph)
+from conftest import (DEMO, HIDE_PORTAUDIO, assert_names, cli, cli_env, digest, error_lines,
+                      make_audio, write_graph)
 from streamq.engine.registry import registry
 
 
@@ -96,6 +97,47 @@ def test_version_and_no_command():
     assert proc.returncode == 0 and proc.stdout.startswith("streamq ")
     proc = cli()
     assert proc.returncode == 2 and "usage" in proc.stdout
+
+
+# -- without PortAudio: file graphs never need it ----------------------------------------
+
+#: The CLI with PortAudio unfindable (as in tests/test_live.py) and sounddevice itself
+#: unimportable; after main() returns, the child says whether sounddevice got loaded
+#: or was even asked for.
+NO_SOUNDDEVICE = HIDE_PORTAUDIO + textwrap.dedent("""
+    import importlib.abc
+    tried = []
+    class Refuse(importlib.abc.MetaPathFinder):
+        def find_spec(self, name, path=None, target=None):
+            if name.partition(".")[0] == "sounddevice":
+                tried.append(name)
+                raise ModuleNotFoundError(f"No module named {name!r}", name=name)
+            return None
+    sys.meta_path.insert(0, Refuse())
+    from streamq.cli import main
+    code = main(sys.argv[1:])
+    print(f"sounddevice loaded: {'sounddevice' in sys.modules}, asked for: {bool(tried)}",
+          file=sys.stderr)
+    sys.exit(code)
+""")
+
+
+@pytest.mark.parametrize("command", ["run", "check", "nodes"])
+def test_file_commands_without_sounddevice(tmp_path, command):
+    # The job statement promises that importing streamq and running file graphs work
+    # without the PortAudio library: sounddevice is imported only for live nodes.
+    args = {"run": ["run", DEMO, "--set", "feed.seconds=1", "--out", tmp_path / "o", "--quiet"],
+            "check": ["check", DEMO],
+            "nodes": ["nodes"]}[command]
+    proc = subprocess.run([sys.executable, "-c", NO_SOUNDDEVICE, *map(str, args)], cwd=tmp_path,
+                          env=cli_env(), capture_output=True, text=True, timeout=120,
+                          stdin=subprocess.DEVNULL)
+    assert proc.returncode == 0, proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert error_lines(proc.stderr)[-1] == "sounddevice loaded: False, asked for: False"
+    if command == "run":
+        report = json.loads((tmp_path / "o" / "report.json").read_text())
+        assert report["complete"] is True and report["samples"] == 48_000  # 1 s at 48 kHz
 
 
 # -- node listing ---------------------------------------------------------------------

@@ -36,6 +36,7 @@ import pytest
 import soundfile as sf
 
 from chain_util import run_toml
+from conftest import NO_PORTAUDIO
 from live_util import RATE, Player, control_dropouts, jack_server, play_through  # noqa: F401
 
 LIVE = pytest.mark.live
@@ -415,16 +416,6 @@ def test_devices_lists_the_jack_system_device(jack_server):
     jack = [d for d in devs if d["host_api"].startswith("JACK")]
     assert jack and jack[0]["inputs"] == 2 and jack[0]["outputs"] == 2
     assert jack[0]["default_rate"] == 48000
-
-
-NO_PORTAUDIO = textwrap.dedent("""
-    # Make PortAudio unfindable, as on a machine without libportaudio2: sounddevice
-    # looks the library up with ctypes.util.find_library and raises OSError.
-    import ctypes.util, sys
-    ctypes.util.find_library = lambda name: None
-    from streamq.cli import main
-    sys.exit(main(sys.argv[1:]))
-""")
 
 
 @pytest.mark.parametrize("args", [["devices"], ["run", "GRAPH", "--seconds", "1"]])

@@ -10,9 +10,10 @@ import json
 
 import numpy as np
 import pytest
+import soundfile as sf
 
 from conftest import cli, digest, make_audio, read_audio, run_file, write_graph
-from streamq.engine.graph import parse_graph
+from streamq.engine.graph import load_graph, parse_graph
 from streamq.engine.scheduler import REPLAY_BLOCK, build, run_offline
 from streamq.errors import StreamqError
 from streamq.nodes import scenes
@@ -209,3 +210,92 @@ def test_block_below_one_frame_is_refused(tmp_path, block):
     # The nodes were closed: no temporary or empty output is left behind.
     assert sorted(p.name for p in (tmp_path / "o").iterdir()) == []
 
+
+
+# -- explicit state (DESIGN.md rule 3): stop half way, continue in fresh nodes ---------
+
+def _open_source(graph_file, out_dir):
+    """Build the graph anew (fresh node objects); return its node 'src' and length."""
+    built = build(load_graph(graph_file), out_dir)
+    return built.nodes["src"], built.length
+
+
+def _pull(node, frames: int, block: int) -> np.ndarray:
+    """Step a source node over ``frames`` frames in steps of ``block``; check the
+    blocks' start indices follow on from the node's position."""
+    parts = []
+    for start in range(0, frames, block):
+        n = min(block, frames - start)
+        pkt = node.step(n, {})
+        if parts:
+            assert pkt.block.start == parts[-1][0] + parts[-1][1].shape[0]
+        parts.append((pkt.block.start, pkt.block.data))
+    return np.concatenate([data for _, data in parts])
+
+
+def _resumed_equals_whole(graph_file, tmp_path, cut: int) -> tuple:
+    """Run ``src`` whole, and again as two halves with its state carried (through
+    JSON, as plain data) from one node object to a fresh one built from the file.
+    The two results must be bit-identical; return both nodes' reports."""
+    whole_node, total = _open_source(graph_file, tmp_path / "whole")
+    whole = _pull(whole_node, total, 4096)
+    whole_node.finish()
+    whole_node.close(True)
+
+    first, _ = _open_source(graph_file, tmp_path / "first")
+    head = _pull(first, cut, 1000)
+    state = json.loads(json.dumps(first.get_state()))
+    first.close(False)
+
+    second, _ = _open_source(graph_file, tmp_path / "second")
+    second.set_state(state)
+    pkt = second.step(1, {})
+    assert pkt.block.start == cut
+    tail = np.concatenate([pkt.block.data, _pull(second, total - cut - 1, 777)])
+    second.finish()
+    second.close(True)
+
+    resumed = np.concatenate([head, tail])
+    assert resumed.shape == whole.shape
+    assert np.array_equal(resumed, whole)  # bit-exact, not approximately equal
+    return whole_node.report(), second.report()
+
+
+@pytest.mark.parametrize("scene, extra", [
+    ("drift", ""), ("noise", 'pdf = "laplacian"\nbits = 16'), ("tone", "frequency = 997"),
+])
+def test_test_signal_resumes_from_its_state(tmp_path, scene, extra):
+    # 20,000 frames cut at 10,007: the cut lies inside a noise chunk (8,192 frames),
+    # so the resumed node must regenerate that chunk from the absolute position.
+    g = write_graph(tmp_path, f"""
+        [graph]
+        sample_rate = 8000
+        [nodes.src]
+        use = "test-signal"
+        scene = "{scene}"
+        seconds = 2.5
+        channels = 2
+        seed = 5
+        {extra}
+    """)
+    _resumed_equals_whole(g, tmp_path, cut=10_007)
+
+
+def test_file_source_resumes_from_its_state(tmp_path):
+    # A float file with NaN samples on both sides of the cut, read with channels
+    # picked and swapped: the resumed node seeks to the position and keeps
+    # counting replaced samples from where the first one stopped.
+    x = make_audio(tmp_path / "clean.wav", 20_000, 3, rate=8000, subtype="FLOAT")
+    x[[1234, 15_000], 0] = np.nan
+    x[9000, 1] = np.inf
+    sf.write(str(tmp_path / "take.wav"), x, 8000, subtype="FLOAT")
+    g = write_graph(tmp_path, """
+        [nodes.src]
+        use = "file-source"
+        path = "take.wav"
+        channels = [2, 1]
+        nonfinite = "zero"
+    """)
+    whole, resumed = _resumed_equals_whole(g, tmp_path, cut=10_007)
+    assert whole["frames_read"] == resumed["frames_read"] == 20_000
+    assert whole["nonfinite_replaced"] == resumed["nonfinite_replaced"] == 3

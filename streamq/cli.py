@@ -42,7 +42,7 @@ def cmd_check(args) -> int:
     from streamq.engine.graph import load_graph
     from streamq.engine.scheduler import build
     import tempfile
-    graph = load_graph(args.graph, args.overrides)
+    graph = load_graph(args.graph, args.overrides, precheck=True)
     live = any(n.live_only for n in graph.nodes.values())
     with tempfile.TemporaryDirectory() as tmp:
         built = build(graph, Path(tmp), live=live, options={"check_only": True})

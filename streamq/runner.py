@@ -104,7 +104,7 @@ def write_report_pages(result: RunResult) -> list[Path]:
 
 
 def run_graph_file(args) -> int:
-    graph = load_graph(args.graph, args.overrides)
+    graph = load_graph(args.graph, args.overrides, precheck=True)
     out = prepare_out_dir(Path(args.out) if args.out else default_out_dir(graph))
     if any(n.live_only for n in graph.nodes.values()):
         from streamq.live.runner import run_live

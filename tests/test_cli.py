@@ -245,6 +245,39 @@ def test_all_problems_printed(tmp_path):
         assert line.startswith(f"{g}: ")
 
 
+@pytest.mark.parametrize("command", ["check", "run"])
+def test_file_problems_listed_with_validation_problems(tmp_path, command):
+    # A cycle is found by validation, a missing file and a file at another rate
+    # only when the sources are opened: all three are listed in one go, and a
+    # run writes nothing (not even its output folder).
+    make_audio(tmp_path / "take.wav", 1000, 1, rate=44_100)
+    g = write_graph(tmp_path, """
+        [graph]
+        sample_rate = 48000
+        [nodes.src]
+        use = "file-source"
+        path = "take.wav"
+        [nodes.gone]
+        use = "file-source"
+        path = "gone.wav"
+        [nodes.enc]
+        use = "encoder"
+        input = "dec"
+        bits = 4
+        [nodes.dec]
+        use = "decoder"
+        input = "enc"
+    """)
+    proc = cli(command, g, *(["--out", tmp_path / "o"] if command == "run" else []))
+    lines = assert_clean_failure(proc, 3)
+    assert_names(lines[0], str(g), "node 'dec'", "field 'input'", "cycle", "'enc'")
+    assert_names(lines[1], str(g), "node 'src'", "field 'path'", str(tmp_path / "take.wav"),
+                 "44100 Hz", "48000 Hz")
+    assert_names(lines[2], str(g), "node 'gone'", "field 'path'", str(tmp_path / "gone.wav"),
+                 "no such file")
+    assert not (tmp_path / "o").exists()
+
+
 def test_set_overrides_on_the_command_line(tmp_path):
     g = write_graph(tmp_path, """
         [graph]

@@ -440,6 +440,42 @@ def test_several_build_problems_at_once(tmp_path):
     assert_names(lines[2], g, "node 'tone'", "field 'frequency'", "half the sample rate")
 
 
+def test_precheck_lists_source_problems_with_validation_problems(tmp_path):
+    # No graph.sample_rate: the rate comes from the first file (44.1 kHz), as in a
+    # build. The unknown field is a validation problem; the second file's rate and
+    # the tone above half the rate are seen by the nodes' prechecks, in file order.
+    make_audio(tmp_path / "a.wav", frames=1000, channels=1, rate=44_100)
+    make_audio(tmp_path / "b.wav", frames=1000, channels=1, rate=48_000)
+    g = write_graph(tmp_path, """
+        [nodes.a]
+        use = "file-source"
+        path = "a.wav"
+        [nodes.b]
+        use = "file-source"
+        path = "b.wav"
+        [nodes.tone]
+        use = "test-signal"
+        scene = "tone"
+        frequency = 30000
+        [nodes.keep]
+        use = "file-sink"
+        input = "a"
+        path = "out.wav"
+        loudness = 3
+    """)
+    with pytest.raises(GraphError) as info:
+        load_graph(g, precheck=True)
+    lines = str(info.value).splitlines()
+    assert len(lines) == 3, lines
+    assert_names(lines[0], str(g), "node 'keep'", "field 'loudness'")
+    assert_names(lines[1], str(g), "node 'b'", "field 'path'", "48000 Hz", "44100 Hz")
+    assert_names(lines[2], str(g), "node 'tone'", "field 'frequency'", "half the sample rate")
+    # Without precheck (the library default) validation stops at what it sees itself.
+    with pytest.raises(GraphError) as info:
+        load_graph(g)
+    assert len(str(info.value).splitlines()) == 1
+
+
 # -- TOML syntax ----------------------------------------------------------------------
 
 def test_toml_syntax_error_has_line_and_column(tmp_path):

@@ -167,8 +167,26 @@ def _config_adapter(kinds: dict[str, type[Node]]) -> TypeAdapter:
     return TypeAdapter(Annotated[Union[models], Field(discriminator="use")])
 
 
-def parse_graph(text: str, source: Path | None = None, overrides: list[str] = ()) -> Graph:
-    """Validate a graph given as TOML text. Raises GraphError listing every problem."""
+def infer_rate(graph: Graph) -> int:
+    """The graph's sample rate: the header's, else the file sources', else 48 kHz."""
+    if graph.header.sample_rate:
+        return graph.header.sample_rate
+    for node in graph.nodes.values():
+        rate = getattr(node, "natural_rate", None)
+        if callable(rate):
+            r = rate(graph)
+            if r:
+                return r
+    return 48_000
+
+
+def parse_graph(text: str, source: Path | None = None, overrides: list[str] = (), *,
+                precheck: bool = False) -> Graph:
+    """Validate a graph given as TOML text. Raises GraphError listing every problem.
+
+    With ``precheck``, also list what the nodes can see before they are opened
+    (missing or unsuitable input files; see :meth:`Node.precheck`).
+    """
     label = str(source) if source is not None else "<graph>"
     try:
         raw = tomllib.loads(text)
@@ -177,11 +195,11 @@ def parse_graph(text: str, source: Path | None = None, overrides: list[str] = ()
     except RecursionError:  # tomllib parses nested arrays and inline tables recursively
         raise GraphError([f"{label}: TOML syntax error: arrays or inline tables nested too "
                           f"deeply"]) from None
-    return validate_graph(raw, source, overrides)
+    return validate_graph(raw, source, overrides, precheck=precheck)
 
 
-def load_graph(path: str | Path, overrides: list[str] = ()) -> Graph:
-    """Read and validate a graph file."""
+def load_graph(path: str | Path, overrides: list[str] = (), *, precheck: bool = False) -> Graph:
+    """Read and validate a graph file (``precheck``: see :func:`parse_graph`)."""
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8-sig")  # a byte-order mark from some editors is fine
@@ -189,11 +207,11 @@ def load_graph(path: str | Path, overrides: list[str] = ()) -> Graph:
         raise StreamqError(f"{path}: no such graph file") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise StreamqError(f"{path}: cannot read graph file: {exc}") from None
-    return parse_graph(text, path, overrides)
+    return parse_graph(text, path, overrides, precheck=precheck)
 
 
 def validate_graph(raw: dict[str, Any], source: Path | None = None,
-                   overrides: list[str] = ()) -> Graph:
+                   overrides: list[str] = (), *, precheck: bool = False) -> Graph:
     label = str(source) if source is not None else "<graph>"
     problems: list[str] = []
     for item in overrides:
@@ -302,9 +320,14 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
         fld = next((f for f, ref in nodes[first].upstream().items() if ref == before), "input")
         problems.append(f"{label}: node '{first}', field '{fld}': cycle through nodes "
                         + " -> ".join(f"'{c}'" for c in cycle + [first]))
+    graph = Graph(header=header, nodes=nodes, order=order, source=source, raw=raw)
+    if precheck:
+        rate = infer_rate(graph)
+        for node in nodes.values():
+            problems.extend(f"{label}: {msg}" for msg in node.precheck(source, rate))
     if problems:
         raise GraphError(problems)
-    return Graph(header=header, nodes=nodes, order=order, source=source, raw=raw)
+    return graph
 
 
 def _topological_order(nodes: dict[str, Node]) -> tuple[list[str], list[str]]:

@@ -150,6 +150,11 @@ class Node:
         A JSON-able dict for report.json, or None.
     ``get_state()/set_state()``
         Everything the node needs to continue a stream (rule 3: explicit state).
+    ``precheck(graph_file, sample_rate)``
+        Optional: problems visible before anything is opened (a missing input
+        file, a setting that does not fit the sample rate), so that
+        ``streamq check`` and ``run`` list them with the validation problems.
+        ``open`` must still check the same things.
     """
 
     kind: ClassVar[str] = ""
@@ -207,6 +212,24 @@ class Node:
 
     def get_state(self) -> dict[str, Any]:
         return {}
+
+    def precheck(self, graph_file: Path | None, sample_rate: int) -> list[str]:
+        """Problems this node can see before the graph is built.
+
+        Parameters
+        ----------
+        graph_file : Path or None
+            The graph file (relative input paths are taken from its folder).
+        sample_rate : int
+            The rate the graph will run at (see :func:`streamq.engine.graph.infer_rate`).
+
+        Returns
+        -------
+        list of str
+            One-line messages naming this node and the field, as made by
+            :meth:`fail`; empty when nothing is wrong (the default).
+        """
+        return []
 
     def set_state(self, state: dict[str, Any]) -> None:
         pass

@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from streamq.engine.blocks import Packet, StreamSpec
-from streamq.engine.graph import Graph, GraphError
+from streamq.engine.graph import Graph, GraphError, infer_rate
 from streamq.engine.node import Node, RunContext, SourceNode
 from streamq.errors import StreamqError
 
@@ -35,19 +35,6 @@ class BuiltGraph:
     @property
     def nodes(self) -> dict[str, Node]:
         return self.graph.nodes
-
-
-def infer_rate(graph: Graph) -> int:
-    """The graph's sample rate: the header's, else the file sources', else 48 kHz."""
-    if graph.header.sample_rate:
-        return graph.header.sample_rate
-    for node in graph.nodes.values():
-        rate = getattr(node, "natural_rate", None)
-        if callable(rate):
-            r = rate(graph)
-            if r:
-                return r
-    return 48_000
 
 
 def build(graph: Graph, out_dir: Path, *, live: bool = False,

@@ -11,6 +11,7 @@ from pydantic import Field, field_validator
 from streamq.engine.blocks import Packet, SignalBlock, StreamSpec
 from streamq.engine.node import NodeConfig, RunContext, SourceNode, input_path
 from streamq.engine.registry import register
+from streamq.errors import StreamqError
 from streamq.nodes import scenes
 from streamq.engine.audiofile import far_beyond_full_scale, open_for_reading, subtype_bits
 
@@ -57,19 +58,34 @@ class FileSource(SourceNode):
         except Exception:
             return None
 
-    def open(self, specs, ctx: RunContext) -> StreamSpec:
-        self.path = ctx.resolve_input(self.config.path)
-        f, info = open_for_reading(self.path, lambda m: self.fail("path", m))
-        if info.samplerate != ctx.sample_rate:
+    def _open_checked(self, path: Path, rate: int):
+        """Open ``path`` for reading; refuse it (one line naming node and field) when
+        it is missing or unreadable, not at ``rate`` Hz, or lacks a picked channel."""
+        f, info = open_for_reading(path, lambda m: self.fail("path", m))
+        if info.samplerate != rate:
             f.close()
-            raise self.fail("path", f"{self.path} is {info.samplerate} Hz but the graph runs at "
-                                    f"{ctx.sample_rate} Hz; streamq does not resample (convert "
+            raise self.fail("path", f"{path} is {info.samplerate} Hz but the graph runs at "
+                                    f"{rate} Hz; streamq does not resample (convert "
                                     f"the file, or set graph.sample_rate = {info.samplerate})")
         picks = self.config.channels
         if picks is not None and max(picks) > info.channels:
             f.close()
-            raise self.fail("channels", f"{self.path} has {info.channels} channel(s); "
+            raise self.fail("channels", f"{path} has {info.channels} channel(s); "
                                         f"cannot pick channel {max(picks)}")
+        return f, info
+
+    def precheck(self, graph_file, sample_rate) -> list[str]:
+        try:
+            f, _ = self._open_checked(input_path(self.config.path, graph_file), sample_rate)
+        except StreamqError as exc:
+            return [str(exc)]
+        f.close()
+        return []
+
+    def open(self, specs, ctx: RunContext) -> StreamSpec:
+        self.path = ctx.resolve_input(self.config.path)
+        f, info = self._open_checked(self.path, ctx.sample_rate)
+        picks = self.config.channels
         self._file = f
         self.floats = subtype_bits(info.subtype) is None  # integer PCM cannot exceed full scale
         self._pick = None if picks is None else np.asarray(picks) - 1
@@ -153,12 +169,24 @@ class SceneSignal(SourceNode):
         super().__init__(node_id, config)
         self.position = 0
 
+    def _rate_problem(self, rate: int) -> StreamqError | None:
+        """What does not fit the sample rate ``rate``, or None."""
+        c = self.config
+        if c.scene == "tone" and c.frequency >= rate / 2:
+            return self.fail("frequency", f"{c.frequency} Hz is at or above half the sample rate "
+                                          f"({rate / 2:g} Hz)")
+        return None
+
+    def precheck(self, graph_file, sample_rate) -> list[str]:
+        problem = self._rate_problem(sample_rate)
+        return [] if problem is None else [str(problem)]
+
     def open(self, specs, ctx) -> StreamSpec:
         c = self.config
         self.length = int(round(c.seconds * ctx.sample_rate))
-        if c.scene == "tone" and c.frequency >= ctx.sample_rate / 2:
-            raise self.fail("frequency", f"{c.frequency} Hz is at or above half the sample rate "
-                                         f"({ctx.sample_rate / 2:g} Hz)")
+        problem = self._rate_problem(ctx.sample_rate)
+        if problem is not None:
+            raise problem
         return StreamSpec("signal", ctx.sample_rate, c.channels, 0, c.bits, self.length,
                           {"scene": c.scene})
 

@@ -300,6 +300,20 @@ def test_bad_duration_in_a_graph(tmp_path, gain_kind, value, expect):
     assert_names(line, g, "node 'amp'", "field 'hold'", expect)
 
 
+@pytest.mark.parametrize("table, field, expect", [
+    ('use = "pdf-estimator"\ninput = "feed"\nwindow = "ten ms"', "window", "bad duration 'ten ms'"),
+    ('use = "file-source"\npath = "x.wav"\nchannels = [0]', "channels", "channels are numbered"),
+    ('use = "encoder"\ninput = "feed"\nbits = 4\nlevels = 16', "levels", "give bits or levels"),
+])
+def test_messages_carry_no_pydantic_prefix(tmp_path, table, field, expect):
+    # What a validator raises is the whole message: pydantic's "Value error, " in
+    # front of it says nothing to the user (field checks and cross-field checks alike).
+    g, line = one_problem(tmp_path, FEED + "[nodes.bad]\n" + table + "\n")
+    assert_names(line, g, "node 'bad'", f"field '{field}'")
+    assert line.split(f"field '{field}': ", 1)[1].startswith(expect), line
+    assert "Value error" not in line and "Assertion failed" not in line
+
+
 def test_good_duration_in_a_graph(tmp_path, gain_kind):
     g = write_graph(tmp_path, """
         [graph]

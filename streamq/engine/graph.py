@@ -69,6 +69,15 @@ def _fmt_loc(loc: tuple) -> str:
     return ".".join(str(p) for p in loc)
 
 
+def _error_text(err: dict[str, Any]) -> str:
+    """The message of one pydantic error, without the prefix pydantic puts before
+    what a validator raised ("Value error, bad duration ..." -> "bad duration ...")."""
+    msg = str(err["msg"])
+    for prefix in ("Value error, ", "Assertion failed, "):
+        msg = msg.removeprefix(prefix)
+    return msg
+
+
 def _set_override(raw: dict[str, Any], item: str, label: str) -> str | None:
     """Apply one ``node.field=value`` override to the raw TOML dict."""
     if "=" not in item:
@@ -238,7 +247,8 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
             header = GraphHeader.model_validate(header_raw)
         except ValidationError as exc:
             for err in exc.errors():
-                problems.append(f"{label}: [graph], field '{_fmt_loc(err['loc'])}': {err['msg']}")
+                problems.append(f"{label}: [graph], field '{_fmt_loc(err['loc'])}': "
+                                f"{_error_text(err)}")
 
     nodes_raw = raw.get("nodes")
     if not isinstance(nodes_raw, dict) or not nodes_raw:
@@ -283,9 +293,8 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
                 if loc and loc[0] in wrong:  # said above
                     continue
                 fld = ".".join(loc)
-                msg = err["msg"]
+                msg = _error_text(err)
                 if not fld:   # a check across fields: it names its field as "field: ..."
-                    msg = msg.removeprefix("Value error, ")
                     head, _, rest = msg.partition(": ")
                     if rest and head in kinds[use].Config.model_fields:
                         fld, msg = head, rest

@@ -184,12 +184,16 @@ def test_output_parent_is_a_file(tmp_path):
                  str(tmp_path / "blocker" / "out.wav"), "cannot create")
 
 
-@pytest.mark.parametrize("path, subtype, expect", [
-    ("out.xyz", "PCM_16", "unknown audio file extension '.xyz'"),
-    ("out.flac", "FLOAT", "subtype FLOAT is not available for FLAC"),
-    ("out.wav", "PCM_12", "subtype PCM_12 is not available for WAV"),
+@pytest.mark.parametrize("path, subtype, field, expect", [
+    ("out.xyz", "PCM_16", "path", "unknown audio file extension '.xyz'"),
+    ("out.flac", "FLOAT", "subtype", "subtype FLOAT is not available for FLAC"),
+    ("out.wav", "PCM_12", "subtype", "subtype PCM_12 is not available for WAV"),
+    ("out.wav", "VORBIS", "subtype", "subtype VORBIS is not available for WAV"),
 ])
-def test_bad_output_format(tmp_path, path, subtype, expect):
+def test_bad_output_format(tmp_path, path, subtype, field, expect):
+    # The extension picks the format (field 'path'); the subtype must be one that
+    # format has (soundfile.check_format), else field 'subtype' is at fault. Both
+    # the build and validation with precheck (what `streamq check` runs) say so.
     g = write_graph(tmp_path, f"""
         [nodes.feed]
         use = "test-signal"
@@ -202,8 +206,69 @@ def test_bad_output_format(tmp_path, path, subtype, expect):
     """)
     with pytest.raises(StreamqError) as info:
         build(load_graph(g), tmp_path / "o")
-    assert_names(str(info.value), str(g), "node 'keep'", "field 'path'", expect)
+    assert_names(str(info.value), str(g), "node 'keep'", f"field '{field}'", expect)
+    with pytest.raises(StreamqError) as info:
+        load_graph(g, precheck=True)
+    assert_names(str(info.value), str(g), "node 'keep'", f"field '{field}'", expect)
     assert not (tmp_path / "o" / path).exists()
+
+
+def _two_sinks(tmp_path, first: str, second: str, third: str = "other.wav"):
+    return write_graph(tmp_path, f"""
+        [nodes.feed]
+        use = "test-signal"
+        seconds = 0.1
+        [nodes.keep]
+        use = "file-sink"
+        input = "feed"
+        path = "{first}"
+        [nodes.enc]
+        use = "encoder"
+        input = "feed"
+        bits = 4
+        [nodes.dec]
+        use = "decoder"
+        input = "enc"
+        [nodes.copy]
+        use = "file-sink"
+        input = "dec"
+        path = "{second}"
+        [nodes.codes]
+        use = "index-sink"
+        input = "enc"
+        path = "{third}"
+    """)
+
+
+@pytest.mark.parametrize("second", ["out.wav", "./sub/../out.wav", "OUT"])
+def test_two_sinks_writing_one_file_are_refused(tmp_path, second):
+    # Relative and absolute spellings of one file clash alike ("OUT" stands for
+    # the absolute path of the first sink's file). One line names both nodes and
+    # the field; nothing is left in the output folder.
+    out = tmp_path / "o"
+    second = str(out / "out.wav") if second == "OUT" else second
+    g = _two_sinks(tmp_path, "out.wav", second)
+    with pytest.raises(StreamqError) as info:
+        build(load_graph(g), out)
+    (line,) = str(info.value).splitlines()
+    assert_names(line, str(g), "nodes 'keep' and 'copy'", "field 'path'", "out.wav")
+    assert not list(out.iterdir())
+
+
+def test_an_index_sink_and_a_file_sink_writing_one_file_are_refused(tmp_path):
+    g = _two_sinks(tmp_path, "a.wav", "b.wav", third="a.wav")
+    with pytest.raises(StreamqError) as info:
+        build(load_graph(g), tmp_path / "o")
+    (line,) = str(info.value).splitlines()
+    assert_names(line, str(g), "nodes 'keep' and 'codes'", "field 'path'", "a.wav")
+
+
+def test_sinks_with_their_own_files_run(tmp_path):
+    g = _two_sinks(tmp_path, "out.wav", "sub/out.wav", third="codes.sqi")
+    result = run_file(g, tmp_path / "o")
+    assert result.complete
+    assert sf.info(str(tmp_path / "o" / "out.wav")).frames == 4800
+    assert sf.info(str(tmp_path / "o" / "sub" / "out.wav")).frames == 4800
 
 
 def _sink_graph(tmp_path, seconds=1.0, path="out.wav"):

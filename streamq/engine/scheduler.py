@@ -49,10 +49,14 @@ def build(graph: Graph, out_dir: Path, *, live: bool = False,
     specs: dict[str, StreamSpec | None] = {}
     failed: set[str] = set()
     problems: list[str] = []
+    for first, later, path in same_output_paths(graph, ctx):
+        problems.append(f"{label}: nodes '{first}' and '{later}', field 'path': both write "
+                        f"{path}; give each sink its own file")
+        failed.add(later)  # not opened: it would share the first one's temporary file
     for nid in graph.order:
         node = graph.nodes[nid]
         ups = node.upstream()
-        if any(ref in failed for ref in ups.values()):
+        if nid in failed or any(ref in failed for ref in ups.values()):
             failed.add(nid)
             continue
         if node.live_only and not live:
@@ -89,6 +93,29 @@ def build(graph: Graph, out_dir: Path, *, live: bool = False,
     known = [n for n in lengths if n is not None]
     length = min(known) if known else None
     return BuiltGraph(graph, ctx, specs, sources, length)
+
+
+def same_output_paths(graph: Graph, ctx: RunContext) -> list[tuple[str, str, Path]]:
+    """Sinks that would write the same file: (first sink, later sink, path) in graph
+    order. Paths are compared after resolving them (relative ones land in the output
+    folder; ``.``, ``..`` and links are followed)."""
+    seen: dict[Path, str] = {}
+    clashes = []
+    for nid in graph.order:
+        node = graph.nodes[nid]
+        path = getattr(node.config, "path", None)
+        if node.role != "sink" or not isinstance(path, str):
+            continue
+        target = ctx.resolve_path(path)
+        try:
+            key = target.resolve()
+        except (OSError, RuntimeError):  # a loop of links, a name too long: compare as written
+            key = Path(os.path.abspath(target))
+        if key in seen:
+            clashes.append((seen[key], nid, target))
+        else:
+            seen[key] = nid
+    return clashes
 
 
 @dataclass

@@ -2,14 +2,16 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Literal
 
 from pydantic import Field
 
-from streamq.engine.audiofile import SafeWriter
+from streamq.engine.audiofile import SafeWriter, format_for
 from streamq.engine.background import BackgroundWriter
 from streamq.engine.node import Node, NodeConfig
 from streamq.engine.registry import register
+from streamq.errors import StreamqError
 
 
 class FileSinkConfig(NodeConfig):
@@ -35,12 +37,33 @@ class FileSink(Node):
         self.writer: SafeWriter | None = None
         self.latency = 0
 
+    def _format_problem(self, path) -> StreamqError | None:
+        """An output format libsndfile cannot write: an unknown extension (field
+        'path') or a subtype the format lacks (field 'subtype'); else None."""
+        import soundfile as sf
+        try:
+            fmt = format_for(Path(path))
+        except ValueError as exc:
+            return self.fail("path", str(exc))
+        subtype = self.config.subtype
+        if subtype is not None and not sf.check_format(fmt, subtype):
+            return self.fail("subtype", f"{path}: subtype {subtype} is not available for {fmt} "
+                                        f"files (available: {', '.join(sf.available_subtypes(fmt))})")
+        return None
+
+    def precheck(self, graph_file, sample_rate) -> list[str]:
+        problem = self._format_problem(self.config.path)
+        return [] if problem is None else [str(problem)]
+
     def open(self, specs, ctx):
         spec = specs["input"]
         if spec.kind != "signal":
             raise self.fail("input", f"node '{self.config.input}' gives quantizer indices; "
                                      f"put a decoder before a file-sink (or use an index-sink)")
         path = ctx.resolve_path(self.config.path)
+        problem = self._format_problem(path)
+        if problem is not None:
+            raise problem
         self.latency = spec.latency
         self.writer = SafeWriter(path, spec.rate, spec.channels, self.config.subtype,
                                  lambda m: self.fail("path", m))

@@ -32,6 +32,17 @@ def _seconds(text: str) -> float:
     return value
 
 
+def _frames(text: str) -> int:
+    """argparse type of ``--block``: a whole number of frames, at least 1."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a whole number of frames: {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"block size must be at least 1 frame, got {text!r}")
+    return value
+
+
 def _add_graph_args(p: argparse.ArgumentParser) -> None:
     p.add_argument("graph", help="graph file (TOML)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="NODE.FIELD=VALUE",
@@ -110,7 +121,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("run", help="run a graph (offline from files, or live)")
     _add_graph_args(p)
     p.add_argument("--out", type=Path, help="output folder (default streamq-out/<graph name>/)")
-    p.add_argument("--block", type=int, help="frames per step (offline default 65536; "
+    p.add_argument("--block", type=_frames, help="frames per step (offline default 65536; "
                                             "live default: the graph's block)")
     p.add_argument("--seconds", type=_seconds, help="live runs: stop after this many seconds")
     p.add_argument("--quiet", action="store_true", help="no progress bar or live meter")

@@ -123,7 +123,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, help="output folder (default streamq-out/<graph name>/)")
     p.add_argument("--block", type=_frames, help="frames per step (offline default 65536; "
                                             "live default: the graph's block)")
-    p.add_argument("--seconds", type=_seconds, help="live runs: stop after this many seconds")
+    p.add_argument("--seconds", type=_seconds, help="live runs only: stop after this many seconds "
+                                                    "(offline runs go to the end of their sources)")
     p.add_argument("--quiet", action="store_true", help="no progress bar or live meter")
     p.set_defaults(func=cmd_run)
 

@@ -105,8 +105,13 @@ def write_report_pages(result: RunResult) -> list[Path]:
 
 def run_graph_file(args) -> int:
     graph = load_graph(args.graph, args.overrides, precheck=True)
+    live = any(n.live_only for n in graph.nodes.values())
+    if not live and getattr(args, "seconds", None) is not None:
+        raise StreamqError(f"--seconds {args.seconds:g}: only live runs stop after a time; "
+                           f"'{graph.name}' runs offline to the end of its sources (shorten a "
+                           f"test-signal with --set NODE.seconds=...)")
     out = prepare_out_dir(Path(args.out) if args.out else default_out_dir(graph))
-    if any(n.live_only for n in graph.nodes.values()):
+    if live:
         from streamq.live.runner import run_live
         return run_live(graph, out, args)
     built = build(graph, out)

@@ -318,6 +318,14 @@ def test_bad_block_option(tmp_path, block):
     assert not (tmp_path / "o").exists()
 
 
+def test_seconds_option_is_refused_for_an_offline_run(tmp_path):
+    # --seconds stops live runs; an offline run goes to the end of its sources,
+    # so a --seconds there would be silently ignored: say so, write nothing.
+    (line,) = assert_clean_failure(cli("run", DEMO, "--out", tmp_path / "o", "--seconds", "2"), 1)
+    assert_names(line, "--seconds 2", "live runs", "offline", "'demo'")
+    assert not (tmp_path / "o").exists()
+
+
 # -- output folder and file sink safety -----------------------------------------------
 
 def _short_graph(tmp_path, path="out.wav", seconds=0.2, subtype="PCM_16"):

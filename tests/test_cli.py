@@ -326,6 +326,29 @@ def test_seconds_option_is_refused_for_an_offline_run(tmp_path):
     assert not (tmp_path / "o").exists()
 
 
+@pytest.mark.parametrize("command", ["check", "run"])
+def test_test_signal_shorter_than_a_sample(tmp_path, command):
+    g = write_graph(tmp_path, """
+        [graph]
+        sample_rate = 8000
+        [nodes.feed]
+        use = "test-signal"
+        seconds = 0.00005
+        [nodes.keep]
+        use = "file-sink"
+        input = "feed"
+        path = "out.wav"
+    """)
+    proc = cli(command, g, *(["--out", tmp_path / "o"] if command == "run" else []))
+    (line,) = assert_clean_failure(proc, 1)
+    assert_names(line, str(g), "node 'feed'", "field 'seconds'", "5e-05 s", "0 samples", "8000 Hz")
+    assert not (tmp_path / "o").exists()
+    # 0.7 of a sample rounds to one: that runs, and writes one frame.
+    proc = cli("run", g, "--out", tmp_path / "o", "--quiet", "--set", "feed.seconds=0.0000875")
+    assert proc.returncode == 0, proc.stderr
+    assert sf.info(str(tmp_path / "o" / "out.wav")).frames == 1
+
+
 # -- output folder and file sink safety -----------------------------------------------
 
 def _short_graph(tmp_path, path="out.wav", seconds=0.2, subtype="PCM_16"):

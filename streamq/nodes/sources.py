@@ -172,6 +172,9 @@ class SceneSignal(SourceNode):
     def _rate_problem(self, rate: int) -> StreamqError | None:
         """What does not fit the sample rate ``rate``, or None."""
         c = self.config
+        if round(c.seconds * rate) < 1:
+            return self.fail("seconds", f"{c.seconds:g} s rounds to 0 samples at {rate} Hz "
+                                        f"(one sample lasts {1 / rate:.3g} s)")
         if c.scene == "tone" and c.frequency >= rate / 2:
             return self.fail("frequency", f"{c.frequency} Hz is at or above half the sample rate "
                                           f"({rate / 2:g} Hz)")

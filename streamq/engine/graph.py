@@ -177,7 +177,19 @@ def _config_adapter(kinds: dict[str, type[Node]]) -> TypeAdapter:
 
 
 def infer_rate(graph: Graph) -> int:
-    """The graph's sample rate: the header's, else the file sources', else 48 kHz."""
+    """The rate a graph runs at.
+
+    Parameters
+    ----------
+    graph : Graph
+        A graph (validated or not yet: its nodes need only exist).
+
+    Returns
+    -------
+    int
+        ``graph.sample_rate`` from the header if set, else the rate of the first
+        source with a file that can be read (``natural_rate``), else 48,000 Hz.
+    """
     if graph.header.sample_rate:
         return graph.header.sample_rate
     for node in graph.nodes.values():

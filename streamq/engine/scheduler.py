@@ -96,9 +96,22 @@ def build(graph: Graph, out_dir: Path, *, live: bool = False,
 
 
 def same_output_paths(graph: Graph, ctx: RunContext) -> list[tuple[str, str, Path]]:
-    """Sinks that would write the same file: (first sink, later sink, path) in graph
-    order. Paths are compared after resolving them (relative ones land in the output
-    folder; ``.``, ``..`` and links are followed)."""
+    """Sinks that would write the same file.
+
+    Parameters
+    ----------
+    graph : Graph
+        The validated graph; sinks are nodes of role ``"sink"`` with a ``path`` field.
+    ctx : RunContext
+        Gives the output folder relative paths land in.
+
+    Returns
+    -------
+    list of (str, str, Path)
+        ``(first sink, later sink, path)`` in graph order, one per later sink.
+        Paths are compared once resolved (``.``, ``..`` and links followed), so
+        a relative and an absolute spelling of one file clash too.
+    """
     seen: dict[Path, str] = {}
     clashes = []
     for nid in graph.order:

@@ -439,7 +439,7 @@ def test_writer_refuses_bad_codebooks(tmp_path):
     w = _writer(tmp_path, 1, 4)
     blk = _ib(np.zeros((4, 1)))
     for thr, lev, needle in [(THR4[::-1], LEV4, "thresholds are not increasing"),
-                             ([-1, 0, 0], LEV4, "thresholds are not increasing"),
+                             ([-1, 0, 0], LEV4, "(threshold 2 = 0.0 after 0.0)"),
                              ([-1, np.nan, 1], LEV4, "non-finite"),
                              (THR4, [-1, 0, np.inf, 2], "non-finite"),
                              (THR4 + [2.0], LEV4, "4 thresholds for L=4 levels (expected 3)")]:
@@ -594,8 +594,8 @@ def test_codebook_checks(tmp_path):
     d = np.zeros((2, 1), np.uint8)
     one = dict(channels=1)
     cases = [
-        (rec_codebook(0, 0, [0.0, -1.0, 1.0], LEV4), "thresholds are not increasing"),
-        (rec_codebook(0, 0, [-1.0, 0.0, 0.0], LEV4), "thresholds are not increasing"),
+        (rec_codebook(0, 0, [0.0, -1.0, 1.0], LEV4), "not increasing (threshold 1 = -1.0 after 0.0)"),
+        (rec_codebook(0, 0, [-1.0, 0.0, 0.0], LEV4), "not increasing (threshold 2 = 0.0 after 0.0)"),
         (rec_codebook(0, 0, [-1.0, np.inf, 1.0], LEV4), "non-finite"),
         (rec_codebook(0, 0, THR4, [-1.5, np.nan, 0.5, 1.5]), "non-finite"),
         (rec_codebook(0, 0, [0.0], [-1.0, 1.0]), "L=2 levels but the stream has n_levels=4"),

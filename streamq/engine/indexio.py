@@ -160,8 +160,8 @@ def _check_codebook(cb: CodebookUpdate, channels: int, n_levels: int) -> str | N
                 f"above full scale (1.0)")
     if L > 2 and not np.all(np.diff(thr) > 0):
         k = int(np.flatnonzero(~(np.diff(thr) > 0))[0])
-        return (f"codebook thresholds are not increasing (threshold {k + 1} = {thr[k + 1]!r} "
-                f"after {thr[k]!r})")
+        return (f"codebook thresholds are not increasing (threshold {k + 1} = "
+                f"{float(thr[k + 1])!r} after {float(thr[k])!r})")
     return None
 
 

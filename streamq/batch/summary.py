@@ -17,12 +17,12 @@ from __future__ import annotations
 import csv
 import json
 import math
-import os
 import re
 from pathlib import Path
 from typing import Any
 
 from streamq.batch.work import REPORT, read_json
+from streamq.engine.audiofile import replacing
 
 #: Meter figures copied into the table, in column order.
 METER_FIELDS = ("snr_db", "segsnr_db", "bits_per_sample", "side_info_bits_per_sample",
@@ -141,9 +141,8 @@ def _cell(v) -> str:
 
 
 def _atomic_write(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
+    with replacing(path) as f:
+        f.write(text)
 
 
 def write_csv(path: Path, entries: list[dict[str, Any]], tot: dict[str, dict[str, Any]]) -> None:

@@ -27,6 +27,7 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
+from streamq.engine.audiofile import replacing
 from streamq.engine.graph import Graph, validate_graph
 from streamq.engine.scheduler import Interrupted, build, run_offline
 from streamq.errors import StreamqError
@@ -99,9 +100,8 @@ def one_line(exc: BaseException) -> str:
 
 
 def _write_json(path: Path, data: dict[str, Any]) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text(json.dumps(data, indent=2) + "\n", encoding="utf-8")
-    os.replace(tmp, path)
+    with replacing(path) as f:
+        f.write(json.dumps(data, indent=2) + "\n")
 
 
 def _remove(path: Path) -> None:

@@ -1,8 +1,10 @@
-"""Audio file helpers shared by file nodes: clear errors on open, and a writer
-that never leaves half a file under the final name."""
+"""Audio file helpers shared by file nodes: clear errors on open, and writers
+that never leave half a file under the final name (:class:`SafeWriter` for
+audio, :func:`replacing` for any other output file: CSV, JSON, HTML, PNG)."""
 
 from __future__ import annotations
 
+import contextlib
 import os
 import re
 import shutil
@@ -194,6 +196,46 @@ class SafeWriter:
             self.tmp.unlink()
         except OSError:
             pass
+
+
+@contextlib.contextmanager
+def replacing(path: Path, mode: str = "w", **open_kw):
+    """Open ``path`` for writing as a temporary file beside it (``.NAME.part``)
+    that takes the final name only once it is whole.
+
+    Parameters
+    ----------
+    path : the file to write; an older file under that name is kept until the
+        new one replaces it.
+    mode : ``"w"`` (text, UTF-8 unless ``encoding`` is given) or ``"wb"``.
+    **open_kw : passed to :func:`open` (e.g. ``newline=""`` for csv).
+
+    Yields
+    ------
+    file
+        The open temporary file, streamed into (nothing is held in memory).
+
+    Raises
+    ------
+    OSError
+        Or whatever the body raises; the temporary file is removed first, so
+        nothing partial is left behind. Callers turn it into a one-line
+        StreamqError naming the file.
+    """
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.part")
+    if "b" not in mode:
+        open_kw.setdefault("encoding", "utf-8")
+    try:
+        with open(tmp, mode, **open_kw) as f:
+            yield f
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            tmp.unlink()
+        except OSError:
+            pass
+        raise
 
 
 def _disk_full(folder: Path) -> bool:

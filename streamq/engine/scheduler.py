@@ -9,13 +9,13 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import signal
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
+from streamq.engine.audiofile import replacing
 from streamq.engine.blocks import Packet, StreamSpec
 from streamq.engine.graph import Graph, GraphError, infer_rate
 from streamq.engine.node import Node, RunContext, SourceNode
@@ -288,17 +288,11 @@ def _finite(o):
 
 def write_report(out_dir: Path, report: dict[str, Any]) -> Path:
     """Write report.json atomically (temporary name, then rename)."""
-    out_dir = Path(out_dir)
-    path = out_dir / "report.json"
-    tmp = out_dir / ".report.json.tmp"
+    path = Path(out_dir) / "report.json"
     text = json.dumps(_finite(json.loads(json.dumps(report, default=_json_default))), indent=2)
     try:
-        tmp.write_text(text + "\n", encoding="utf-8")
-        os.replace(tmp, path)
+        with replacing(path) as f:
+            f.write(text + "\n")
     except OSError as exc:
-        try:
-            tmp.unlink()
-        except OSError:
-            pass
         raise StreamqError(f"{path}: cannot write report: {exc.strerror or exc}") from None
     return path

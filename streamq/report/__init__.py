@@ -79,10 +79,10 @@ def write_report_files(out_dir: str | Path, report: dict[str, Any], *,
         plots[mid] = mine
     try:
         from streamq.report.page import render_html
+        from streamq.engine.audiofile import replacing
         page = out_dir / "report.html"
-        tmp = out_dir / ".report.html.part"
-        tmp.write_text(render_html(report, plots), encoding="utf-8")
-        tmp.replace(page)
+        with replacing(page) as f:
+            f.write(render_html(report, plots))
         written.append(page)
     except Exception as exc:
         warn("report.html", exc)

@@ -26,6 +26,8 @@ from typing import Any
 
 import numpy as np
 
+from streamq.engine.audiofile import replacing
+
 # Our own palette (colour-blind friendly pairs, distinct in greyscale too).
 INK = "#22313f"
 SIGNAL = "#2f6f8f"
@@ -53,9 +55,8 @@ def _save(fig, path: Path) -> Path:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     FigureCanvasAgg(fig)
     path = Path(path)
-    tmp = path.with_name(f".{path.name}.part")
-    fig.savefig(tmp, format="png", dpi=DPI)
-    tmp.replace(path)
+    with replacing(path, "wb") as f:
+        fig.savefig(f, format="png", dpi=DPI)
     return path
 
 

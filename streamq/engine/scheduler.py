@@ -213,6 +213,9 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
             complete = True
         except (Interrupted, KeyboardInterrupt):
             error = "interrupted"
+        except BaseException:
+            error = "failed"   # this error is the one to report, not a later closing one
+            raise
         finally:
             for sig, h in old_handlers.items():
                 signal.signal(sig, h)

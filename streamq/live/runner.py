@@ -242,6 +242,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         designer.shutdown(wait=False, cancel_futures=True)
         raise
     complete = False
+    closing_errors: list[StreamqError] = []   # (a meter's CSV on a full disk, ...)
     try:
         rate = built.ctx.sample_rate
         run = LiveRun(built, block, None if seconds is None else int(round(seconds * rate)))
@@ -334,8 +335,8 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         for nid in built.graph.order:
             try:
                 built.graph.nodes[nid].close(complete)
-            except StreamqError:
-                pass
+            except StreamqError as exc:   # said after the report, which still gets written
+                closing_errors.append(exc)
     live = {"block": block, "block_ms": 1000.0 * block / rate, "xruns": run.xruns,
             "status": run.status, "callback_ms": run.timing(), "callbacks": run.calls,
             # every worker job is one estimator hop (snapshot and designs together)
@@ -361,12 +362,14 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
     for nid, m in report["meters"].items():
         print(f"  {nid}: SNR {m.get('snr_db') or float('nan'):.2f} dB, segmental SNR "
               f"{m.get('segsnr_db') or float('nan'):.2f} dB, {m.get('bits_per_sample') or 0:.3f} bits/sample")
+    for exc in closing_errors:
+        print(f"streamq: {exc}", file=sys.stderr)
     if stalled:
         # PortAudio cannot be shut down without its server; everything is written
         sys.stdout.flush()
         sys.stderr.flush()
         os._exit(2)
-    return 130 if interrupted else 0
+    return 2 if closing_errors else 130 if interrupted else 0
 
 
 def _terminal_meter(args):

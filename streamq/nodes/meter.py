@@ -17,6 +17,7 @@ from typing import Literal
 import numpy as np
 from pydantic import Field
 
+from streamq.engine.audiofile import replacing
 from streamq.engine.blocks import CodebookUpdate, Packet, StreamSpec
 from streamq.engine.delay import DelayLine, FrameCollector
 from streamq.engine.node import Duration, Node, NodeConfig
@@ -120,6 +121,7 @@ class ErrorMeter(Node):
         self.total_frames = inp.frames
         self.L = int(inp.extra.get("n_levels", 0)) or None
         self.out_dir = ctx.out_dir
+        self.csv_written: list[str] | None = None   # CSV names written by close()
         C = self.C
         self.refdelay = DelayLine(self.d, C)
         self.t = 0          # output frames seen
@@ -434,27 +436,37 @@ class ErrorMeter(Node):
         self._write_files()
 
     def _write_files(self) -> None:
-        base = self.out_dir / self.id
+        """The time series and the spectrum as CSV files, each written whole under
+        a temporary name and then renamed (a full disk leaves nothing partial)."""
+        self.csv_written = []
+        path = self.out_dir / f"{self.id}-series.csv"
         try:
-            with open(f"{base}-series.csv", "w", newline="") as f:
+            with replacing(path, newline="") as f:
                 w = csv.DictWriter(f, fieldnames=SERIES_COLUMNS)
                 w.writeheader()
                 for row in self.rows:
                     w.writerow({k: ("" if v is None else (f"{v:.6g}" if isinstance(v, float) else v))
                                 for k, v in row.items()})
+            self.csv_written.append(path.name)
             if self.spec_frames:
+                path = self.out_dir / f"{self.id}-spectrum.csv"
                 freqs = np.fft.rfftfreq(self.N, 1.0 / self.rate)
                 scale = 1.0 / (self.rate * (self.spec_win ** 2).sum() * self.spec_frames * self.C)
                 psd = self.spec_acc * scale
                 psd[:, 1:-1] *= 2.0
-                with open(f"{base}-spectrum.csv", "w", newline="") as f:
+                with replacing(path, newline="") as f:
                     w = csv.writer(f)
                     w.writerow(["frequency_hz", "signal_psd_db", "noise_psd_db"])
                     for fr, sp, npow in zip(freqs, psd[0], psd[1]):
                         w.writerow([f"{fr:.3f}", f"{10 * np.log10(max(sp, 1e-30)):.3f}",
                                     f"{10 * np.log10(max(npow, 1e-30)):.3f}"])
-        except OSError:
-            pass  # the report still carries the totals
+                self.csv_written.append(path.name)
+        except OSError as exc:
+            raise self.fail(None, f"{path}: cannot write ({exc.strerror or exc}); nothing "
+                                  f"was left under that name") from None
+
+    def _written(self, name: str) -> str | None:
+        return name if self.csv_written is None or name in self.csv_written else None
 
     def live_stats(self) -> dict:
         """Running figures for the live terminal meter (read from another thread:
@@ -512,8 +524,9 @@ class ErrorMeter(Node):
             "peak_abs_error": self.peak,
             "codebook_updates": self.updates,
             "per_channel": per_ch,
-            "series_csv": f"{self.id}-series.csv",
-            "spectrum_csv": f"{self.id}-spectrum.csv" if self.spec_frames else None,
+            # (None when the file could not be written: a live run goes on to its report)
+            "series_csv": self._written(f"{self.id}-series.csv"),
+            "spectrum_csv": self._written(f"{self.id}-spectrum.csv") if self.spec_frames else None,
             "codebooks": picks,
             **rates,
         }

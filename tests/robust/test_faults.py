@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -94,6 +95,75 @@ def test_disk_full_for_the_index_file_and_report(tmp_path, tiny_disk):
     (line,) = assert_clean_proc(proc)
     assert "codes.sqi" in line and ("No space left" in line or "write failed" in line), line
     assert not (out / "codes.sqi").exists() and leftovers(out) == []
+
+
+def test_disk_full_for_the_meter_csv(tmp_path, tiny_disk):
+    """The meter writes its CSV files when the run ends: on a disk with 4 KiB
+    left the time series does not fit. One line names the meter node and the
+    file; nothing partial is left under the final name, and the series CSV of
+    an earlier run in the same folder is kept as it was."""
+    out = tiny_disk / "run"
+    out.mkdir()
+    old = "time_s,samples\n0,4800\n"
+    (out / "noise-series.csv").write_text(old)
+    free = shutil.disk_usage(tiny_disk).free
+    (tiny_disk / "filler").write_bytes(b"\0" * (free - 4096))
+    assert shutil.disk_usage(tiny_disk).free <= 4096
+    g = write_graph(tmp_path, """
+        [graph]
+        sample_rate = 48000
+        [nodes.feed]
+        use = "test-signal"
+        seconds = 30
+        [nodes.enc]
+        use = "encoder"
+        input = "feed"
+        bits = 4
+        [nodes.dec]
+        use = "decoder"
+        input = "enc"
+        [nodes.noise]
+        use = "error-meter"
+        reference = "feed"
+        input = "dec"
+    """)
+    proc = cli("run", g, "--out", out)
+    (line,) = assert_clean_proc(proc)
+    assert line.startswith("node 'noise': ") and str(out / "noise-series.csv") in line, line
+    assert "No space left on device" in line, line
+    assert (out / "noise-series.csv").read_text() == old
+    assert not (out / "noise-spectrum.csv").exists()
+    assert leftovers(out) == []
+    assert_outputs_valid(out)
+
+
+def test_a_failing_close_does_not_hide_the_first_error(tmp_path, monkeypatch):
+    """When a step fails, the nodes are still closed; an error while closing
+    (here the meter's CSV) must not take the place of the one that stopped the run."""
+    from conftest import run_file
+    from streamq.errors import StreamqError
+    from streamq.nodes.meter import ErrorMeter
+    from streamq.nodes.sources import SceneSignal
+
+    def bad_step(self, frames, inputs):
+        raise self.fail("seconds", "the first error")
+
+    def bad_csv(self):
+        raise self.fail(None, "the closing error")
+
+    monkeypatch.setattr(SceneSignal, "step", bad_step)
+    monkeypatch.setattr(ErrorMeter, "_write_files", bad_csv)
+    g = write_graph(tmp_path, """
+        [nodes.feed]
+        use = "test-signal"
+        seconds = 1
+        [nodes.noise]
+        use = "error-meter"
+        reference = "feed"
+        input = "feed"
+    """)
+    with pytest.raises(StreamqError, match="the first error"):
+        run_file(g, tmp_path / "o")
 
 
 def test_read_only_output_folder(tmp_path):

@@ -7,6 +7,7 @@ through a real subprocess (``conftest.cli``) to see what a user sees.
 
 from __future__ import annotations
 
+import csv
 import datetime
 import json
 import math
@@ -93,7 +94,8 @@ def leftovers(folder: Path) -> list[Path]:
 
 def assert_outputs_valid(out: Path) -> dict | None:
     """Whatever a run left in ``out`` is whole: no temporary files; every audio
-    file reads to its end; report.json (if any) parses and agrees with the files."""
+    file reads to its end; every CSV file parses (a header, then rows of as many
+    numbers or blanks); report.json (if any) parses and agrees with the files."""
     out = Path(out)
     assert leftovers(out) == [], leftovers(out)
     if not out.exists():
@@ -103,6 +105,8 @@ def assert_outputs_valid(out: Path) -> dict | None:
             with sf.SoundFile(str(p)) as f:
                 data = f.read(dtype="float64", always_2d=True)
                 assert data.shape[0] == f.frames, p
+        elif p.suffix.lower() == ".csv":
+            assert_csv_whole(p)
     rep = out / "report.json"
     if rep.exists():
         report = json.loads(rep.read_text())
@@ -110,8 +114,26 @@ def assert_outputs_valid(out: Path) -> dict | None:
             path = Path(o.get("path", ""))
             if path.suffix.lower() in (".wav", ".flac") and path.exists():
                 assert sf.info(str(path)).frames == o["frames"], nid
+        for nid, m in report.get("meters", {}).items():
+            for key in ("series_csv", "spectrum_csv"):
+                if m.get(key):
+                    assert (out / m[key]).is_file(), (nid, key)
         return report
     return None
+
+
+def assert_csv_whole(path: Path) -> None:
+    """A CSV file the meter writes: a header row, then rows of as many fields,
+    each a number or blank (a file cut short mid-row fails here)."""
+    with open(path, newline="", encoding="utf-8") as f:
+        rows = list(csv.reader(f))
+    assert rows and rows[0], path
+    width = len(rows[0])
+    for i, row in enumerate(rows[1:], 2):
+        assert len(row) == width, (path, i, row)
+        for v in row:
+            if v:
+                float(v)
 
 
 # -- a tiny TOML writer (tomllib only reads) -----------------------------------------

@@ -7,6 +7,7 @@ Skipped with a reason when jackd, PortAudio or JACK-Client is missing.
 
 from __future__ import annotations
 
+import json
 import signal
 import subprocess
 import sys
@@ -108,11 +109,19 @@ def test_jack_server_killed_mid_run(tmp_path):
             proc.kill()
             proc.communicate()
         server.stop()
-    assert proc.returncode != 0, (out, err)
+    assert proc.returncode == 2, (proc.returncode, out, err)
     assert "Traceback" not in err, err
-    lines = [line for line in err.splitlines() if line.startswith("streamq: ")]
-    assert lines, err
-    assert leftovers(tmp_path / "o") == []
-    if (tmp_path / "o" / "decoded.wav").exists():
-        info = sf.info(str(tmp_path / "o" / "decoded.wav"))
-        assert info.frames > 0
+    lines = [line for line in err.splitlines() if line.strip()]
+    assert len(lines) == 1, err
+    assert lines[0].startswith("streamq: the audio stopped after ") and \
+        "did the audio server or device go away?" in lines[0], lines
+    out_dir = tmp_path / "o"
+    assert leftovers(out_dir) == []
+    report = json.loads((out_dir / "report.json").read_text())
+    assert report["complete"] is False and report["stopped_by"] == "stalled", report
+    # the decoded file holds exactly what the report says was run, and it reads whole
+    frames = report["outputs"]["keep"]["frames"]
+    assert frames == report["samples"] > 0, report
+    info = sf.info(str(out_dir / "decoded.wav"))
+    assert info.frames == frames, (info.frames, frames)
+    assert sf.read(str(out_dir / "decoded.wav"))[0].shape[0] == frames

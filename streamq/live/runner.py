@@ -56,6 +56,59 @@ def _device(sd, node, direction: str, channels: int):
     return idx
 
 
+# PortAudio's error codes for a stream it cannot open with these settings
+_BAD_RATE = -9997
+_BAD_CHANNELS = -9998
+
+
+def _open_failure(exc, sd, run: "LiveRun", graph: Graph, rate: int, block: int) -> StreamqError:
+    """One line for a stream PortAudio would not open, naming the graph field to
+    change: ``[graph] sample_rate`` for a rate the device does not run, the live
+    node's ``channels`` (live-input) or ``input`` (live-output, whose channels
+    come from its input) for a channel count it does not have."""
+    label = str(graph.source) if graph.source else "<graph>"
+    detail = " ".join(str(exc).splitlines()[0].split())
+    code = exc.args[1] if len(exc.args) > 1 else None
+    if code == _BAD_RATE:
+        return StreamqError(f"{label}: [graph], field 'sample_rate': the audio device does not "
+                            f"run at {rate} Hz ({detail}); give a rate it runs (see `streamq "
+                            f"devices`)")
+    if code == _BAD_CHANNELS:
+        sides = []
+        if run.inp:
+            sides.append((run.inp[0], "input", "channels", run.inp[0].spec.channels))
+        if run.out:
+            sides.append((run.out[0], "output", "input", run.out[0].C))
+        node, direction, field, n = sides[0]
+        have = None
+        for side in sides:   # a duplex stream: the side the device is short of
+            have = _device_channels(sd, side[0], side[1])
+            if have is not None and have < side[3]:
+                node, direction, field, n = side
+                break
+        else:
+            have = _device_channels(sd, node, direction)
+        what = "" if field == "channels" else f", the channels of node '{node.config.input}'"
+        has = "" if have is None else f" (it has {have})"
+        return StreamqError(f"{label}: node '{node.id}', field '{field}': the audio device cannot "
+                            f"open {n} {direction} channel(s){what}{has}: {detail} (see "
+                            f"`streamq devices`)")
+    return StreamqError(f"cannot open the audio stream at {rate} Hz, block {block}: {detail} "
+                        f"(choose a supported sample_rate or device; see `streamq devices`)")
+
+
+def _device_channels(sd, node, direction: str) -> int | None:
+    """The channel count the device of a live node offers in ``direction`` (None if unknown)."""
+    from streamq.live.devices import resolve_device
+    try:
+        idx = resolve_device(node.config.device, direction, 0, sd=sd, where="")
+        if idx is None:
+            idx = sd.default.device[0 if direction == "input" else 1]
+        return int(sd.query_devices(idx)[f"max_{direction}_channels"])
+    except Exception:
+        return None
+
+
 def _warm_worker() -> None:
     """Import the design code and load the compiled kernels in the worker process
     before the stream starts (loading them takes a second or more: at the first
@@ -263,9 +316,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 o = _device(sd, run.out[0], "output", run.out[0].C)
                 stream = sd.OutputStream(device=o, channels=run.out[0].C, **kwargs)
         except sd.PortAudioError as exc:
-            raise StreamqError(f"cannot open the audio stream at {rate} Hz, block {block}: "
-                               f"{str(exc).splitlines()[0]} (choose a supported sample_rate or "
-                               f"device; see `streamq devices`)") from None
+            raise _open_failure(exc, sd, run, graph, rate, block) from None
         meter = _terminal_meter(args)
         interrupted = False
         stalled = False

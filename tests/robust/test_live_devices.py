@@ -1,7 +1,8 @@
 """Live devices: bad requests to a real (private, dummy-driver) JACK server, and
 the server dying under a running graph. tests/test_live.py covers a missing
 device and Ctrl-C; here: sample rates and channel counts the device cannot
-give, and a JACK server killed mid-run (clean stop, one line, files valid).
+give (one line naming the graph field to change), and a JACK server killed
+mid-run (clean stop, one line, report and files valid).
 Skipped with a reason when jackd, PortAudio or JACK-Client is missing.
 """
 
@@ -52,9 +53,26 @@ subtype = "FLOAT"
 """
 
 
-def run_live(server, tmp_path, rate=48000, channels=2, seconds="2", timeout=90):
+MONITOR = """
+[graph]
+name = "live-monitor"
+sample_rate = 48000
+block = 128
+
+[nodes.feed]
+use = "test-signal"
+channels = {channels}
+seconds = 2
+
+[nodes.mon]
+use = "live-output"
+input = "feed"
+"""
+
+
+def run_live(server, tmp_path, rate=48000, channels=2, seconds="2", timeout=90, graph=GRAPH):
     g = tmp_path / "g.toml"
-    g.write_text(textwrap.dedent(GRAPH.format(rate=rate, channels=channels)))
+    g.write_text(textwrap.dedent(graph.format(rate=rate, channels=channels)))
     return subprocess.run([sys.executable, "-m", "streamq.cli", "run", str(g), "--out",
                            str(tmp_path / "o"), "--seconds", seconds, "--quiet"],
                           env=server.env(), capture_output=True, text=True, timeout=timeout,
@@ -71,15 +89,26 @@ def one_line(res) -> str:
 
 @pytest.mark.parametrize("rate", [1, 8000, 768_000])
 def test_sample_rate_the_server_does_not_run(jack_server, tmp_path, rate):  # noqa: F811
+    """The server runs at 48 kHz: the message names the graph field to change."""
     line = one_line(run_live(jack_server, tmp_path, rate=rate))
-    assert str(rate) in line and "sample_rate" in line, line
+    assert line.startswith(f"streamq: {tmp_path / 'g.toml'}: [graph], field 'sample_rate': "), line
+    assert f"{rate} Hz" in line, line
     assert not (tmp_path / "o" / "decoded.wav").exists() and leftovers(tmp_path / "o") == []
 
 
 def test_more_channels_than_the_device_has(jack_server, tmp_path):  # noqa: F811
+    """The dummy server has 2 capture ports: the live node's channels field is named."""
     line = one_line(run_live(jack_server, tmp_path, channels=64))
-    assert "channel" in line, line
+    assert line.startswith(f"streamq: {tmp_path / 'g.toml'}: node 'mic', field 'channels': "), line
+    assert "64 input channel(s) (it has 2)" in line, line
     assert not (tmp_path / "o" / "decoded.wav").exists()
+
+
+def test_more_output_channels_than_the_device_has(jack_server, tmp_path):  # noqa: F811
+    """A monitor takes its channel count from its input: that field is named."""
+    line = one_line(run_live(jack_server, tmp_path, channels=6, graph=MONITOR))
+    assert line.startswith(f"streamq: {tmp_path / 'g.toml'}: node 'mon', field 'input': "), line
+    assert "6 output channel(s), the channels of node 'feed' (it has 2)" in line, line
 
 
 def test_jack_server_killed_mid_run(tmp_path):

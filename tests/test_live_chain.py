@@ -4,12 +4,16 @@ and the follower thread's share, stepped by hand, against an offline run.
 The worker process is replaced by a function that runs each job at once (the
 live nodes cannot tell), so every design is back long before it falls due
 (apply_after): the split chain must then reproduce an offline run of the same
-input exactly, whatever the batch sizes of the follower.
+input exactly, whatever the batch sizes of the follower. One test uses the real
+worker process and kills it mid-run.
 """
 
 from __future__ import annotations
 
 import json
+import os
+import signal
+import time
 from concurrent.futures import Future
 from pathlib import Path
 
@@ -165,3 +169,83 @@ def test_merge_packets_keeps_frames_events_and_version_spans():
     i2 = IndexBlock(np.zeros((2, 1), np.uint8), 13, RATE, (((13, 4), (14, 5)),))
     mi = merge_packets([Packet(i1), Packet(i2)])
     assert mi.block.versions == (((10, 4), (14, 5)),)
+
+
+def test_a_dead_worker_process_leaves_the_audio_flowing(tmp_path):
+    """The live run's worker process dies mid-run (killed here, as the kernel's
+    out-of-memory killer would): the jobs waiting on it fail, and the pool refuses
+    every later job with BrokenProcessPool. As with a job that fails, the chain
+    goes on with the codebooks in force, the failure is counted and reported, and
+    no more jobs are offered to the dead pool."""
+    from concurrent.futures.process import BrokenProcessPool
+    from streamq.live.runner import make_workers
+
+    x = programme(1.6)      # 600 blocks of 128
+    blocks = x.shape[0] // BLOCK
+    kill_at = 250
+    out = tmp_path / "live"
+    out.mkdir()
+    designer, helper = make_workers()
+    helper.shutdown()
+    offers: list[str] = []
+
+    def offload(fn, *args):
+        try:
+            fut = designer.submit(fn, *args)
+        except BrokenProcessPool:
+            offers.append("refused")
+            raise
+        offers.append("taken")
+        return fut
+
+    try:
+        built = build(parse_graph(LIVE, out / "live.toml"), out, live=True, offload=offload,
+                      background=at_once)
+        chain = LiveChain(built)
+        nodes = built.graph.nodes
+        mic, stats, enc, mon = nodes["mic"], nodes["stats"], nodes["enc"], nodes["mon"]
+        monitor_finite = True
+        for i in range(blocks):
+            if i < kill_at:   # up to the kill, every job is back before the next block
+                deadline = time.monotonic() + 30
+                while not all(f.done() for f in stats.jobs) and time.monotonic() < deadline:
+                    time.sleep(0.001)
+            elif i == kill_at:
+                assert enc.updates > 2 * 4, "no designs came back before the kill"
+                pid = designer.submit(os.getpid).result(timeout=30)
+                probe = designer.submit(time.sleep, 30)
+                os.kill(pid, signal.SIGKILL)
+                assert isinstance(probe.exception(timeout=30), BrokenProcessPool)
+                taken = offers.count("taken")
+            elif i == kill_at + 100:    # whatever was under way has come back or failed
+                settled = enc.updates
+            mic.feed(x[i * BLOCK:(i + 1) * BLOCK])
+            chain.step(BLOCK)
+            monitor_finite &= bool(np.isfinite(mon.block).all())
+            if (i + 1) % 3 == 0:
+                chain.follow_once()
+        chain.follow_once()
+        for nid in built.graph.order:
+            nodes[nid].finish()
+    finally:
+        for nid in built.graph.order:
+            built.graph.nodes[nid].close(True)
+        designer.shutdown(wait=False, cancel_futures=True)
+    samples = blocks * BLOCK
+    report = make_report(built, complete=True, samples=samples, seconds=0.0)
+    # every block went through, to the end, and the monitor never went non-finite
+    assert chain.followed == samples and monitor_finite
+    decoded = sf.read(out / "decoded.wav", always_2d=True)[0]
+    assert decoded.shape == (samples, 2) and np.isfinite(decoded).all()
+    # with the last good codebooks: the decoded signal still follows the input
+    tail = slice((kill_at + 100) * BLOCK, samples)
+    err = decoded[tail] - x[tail]
+    assert 10 * np.log10((x[tail].astype(float) ** 2).sum() / (err ** 2).sum()) > 5
+    # the failure is counted and reported as a failed job is (estimator and encoder)
+    stats = report["nodes"]["stats"]
+    assert stats["worker_errors"] >= 1 and "BrokenProcessPool" in stats["worker_error"]
+    assert "worker process is gone" in stats["worker_error"]
+    assert report["nodes"]["enc"]["worker_errors"] >= 1
+    # one job was refused, and none offered after it; no codebook changed after that
+    assert offers[taken:].count("refused") == 1 and offers[-1] == "refused"
+    assert enc.updates == settled

@@ -10,6 +10,7 @@ snapshot is due at every ``t = k * hop`` (k >= 1) and covers
 
 from __future__ import annotations
 
+from concurrent.futures import BrokenExecutor
 from typing import Literal
 
 import numpy as np
@@ -252,6 +253,7 @@ class PdfEstimator(Node):
         self.jobs: list = []
         self.listeners: list = []
         self.worker_errors = 0
+        self.worker_lost = False   # the worker process died: no more offloads this run
         self.skipped = 0
         return StreamSpec("signal", rate, self.C, spec.latency, spec.int_bits, spec.frames,
                           {**spec.extra, "subscribe": self.subscribe,
@@ -335,11 +337,18 @@ class PdfEstimator(Node):
                 # live runs: the worker computes the snapshot from a copy of the
                 # window; it travels with the first block after it is ready. A
                 # worker that falls behind skips hops instead of piling them up.
+                if self.worker_lost:
+                    continue
                 if sum(1 for f in self.jobs if not f.done()) >= 2:
                     self.skipped += 1
                     continue
-                fut = self.ctx.offload(hop_job, t, self._window(min(self.W, t)), self.params,
-                                       list(self.last), [h.requests(t) for h in self.listeners])
+                requests = [h.requests(t) for h in self.listeners]
+                try:
+                    fut = self.ctx.offload(hop_job, t, self._window(min(self.W, t)),
+                                           self.params, list(self.last), requests)
+                except BrokenExecutor as exc:
+                    self._lost(exc)
+                    continue
                 fut.add_done_callback(self._ready)
                 self.jobs.append(fut)
                 continue
@@ -351,6 +360,17 @@ class PdfEstimator(Node):
         if pos < frames:
             self._push(data[pos:])
         return Packet(pkt.block, tuple(pkt.events) + tuple(events), pkt.indices)
+
+    def _lost(self, exc: BaseException) -> None:
+        """The worker process is gone (killed, out of memory): like a failed job,
+        the audio goes on with the codebooks in force and the failure is counted
+        and reported; no more jobs are offered to the dead pool."""
+        self.worker_lost = True
+        self.worker_errors += 1
+        self.worker_error = (f"{type(exc).__name__}: {exc} (the worker process is gone; "
+                             f"no more snapshots or designs this run)")
+        for hook in self.listeners:
+            hook.failed(exc)
 
     def report(self):
         return {"snapshots": self.snapshots, "window_samples": self.W, "hop_samples": self.H,

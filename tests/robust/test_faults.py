@@ -1,6 +1,11 @@
-"""Faults while a run is under way: a full disk, a read-only output folder, an
-input file deleted or cut short during a replay, a failing design worker and a
-JACK server that dies during a live run.
+"""Faults while an offline run is under way: a full disk (for the audio, the
+index file and report, the meter's CSV files), a read-only output folder, an
+input file deleted or cut short during a replay, and an error while closing
+that must not hide the one that stopped the run.
+
+The live faults are tested elsewhere: a failing worker job in tests/test_live.py,
+a worker process that dies in tests/test_live_chain.py, and a JACK server killed
+mid-run in tests/robust/test_live_devices.py.
 
 Root ignores permission bits, so the disk faults use real small or read-only
 tmpfs mounts (skipped where ``mount`` is not allowed; tests/test_cli.py covers

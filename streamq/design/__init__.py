@@ -51,7 +51,7 @@ from streamq.design.lloyd import (
     lloyd_max_samples,
     sample_histogram,
 )
-from streamq.design.optimal import MAX_DP_POINTS, optimal_histogram
+from streamq.design.optimal import MAX_DP_LEVELS, MAX_DP_POINTS, optimal_histogram
 from streamq.design.pdfs import PDF_NAMES, PdfModel, pdf_histogram, pdf_model
 from streamq.design.report import (
     DesignReport,
@@ -98,6 +98,7 @@ __all__ = [
     "lloyd_max_pdf",
     "lloyd_max_samples",
     "sample_histogram",
+    "MAX_DP_LEVELS",
     "MAX_DP_POINTS",
     "optimal_histogram",
     "PDF_NAMES",

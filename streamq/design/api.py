@@ -7,10 +7,14 @@ it picks the right routine for the data it is given:
 data               routes
 =================  ===========================================================
 ``pdf=``           exact PDF routines (Lloyd-Max with Newton steps, optimal
-                   compander, optimal uniform step); ``optimal`` and ``ecsq``
-                   work on a fine histogram of the PDF (``bins``, default
-                   65,536 for ecsq and 4,096 for optimal) and ``optimal`` is
-                   then polished by Lloyd-Max on the PDF itself
+                   compander, optimal uniform step); ``ecsq`` works on a
+                   fine histogram of the PDF (``bins``, default 65,536).
+                   ``optimal``: for a log-concave PDF the Lloyd-Max design
+                   (the unique optimum, Fleischer 1964); otherwise dynamic
+                   programming on a histogram of the PDF (``bins``, default
+                   16 per level, 4,096 to ``MAX_DP_POINTS``) polished by
+                   Lloyd-Max on the PDF, keeping the better of that and
+                   plain Lloyd-Max
 ``centers=``,      histogram routines (figures w.r.t. the weighted histogram)
 ``weights=``
 ``samples=``       ``lloyd-max``: the sample-exact Lloyd iteration (exact
@@ -19,7 +23,8 @@ data               routes
                    (``bins``, default 65,536, bin centroids as centers);
                    ``optimal``: dynamic programming on the distinct sample
                    values (merged to ``MAX_DP_POINTS`` equal-width bins if
-                   there are more); ``ecsq``, ``uniform``, ``compander``: on
+                   there are more; at most ``MAX_DP_LEVELS`` levels when
+                   there are more values than levels); ``ecsq``, ``uniform``, ``compander``: on
                    a fine histogram. The report is always re-measured on the
                    samples themselves.
 nothing            ``uniform`` (with ``step`` or ``loading``), ``mu-law``,
@@ -50,7 +55,7 @@ from streamq.design.lloyd import (
     lloyd_max_samples,
     sample_histogram,
 )
-from streamq.design.optimal import MAX_DP_POINTS, optimal_histogram
+from streamq.design.optimal import MAX_DP_LEVELS, MAX_DP_POINTS, optimal_histogram
 from streamq.design.pdfs import PdfModel, pdf_histogram, pdf_model
 from streamq.design.report import (
     DesignReport,
@@ -176,7 +181,9 @@ def design(method: str, levels=None, *, pdf=None, centers=None, weights=None, sa
         Warm start for ``lloyd-max`` (and ``ecsq``).
     **options
         Passed on: ``tol``, ``max_iter``, ``version``, ``record``, ``bins``
-        (histogram resolution), ``entropy``/``multiplier`` (ecsq), ``step``,
+        (histogram resolution), ``max_points`` (optimal: most points of the
+        dynamic programme, raised to the level count if smaller),
+        ``entropy``/``multiplier`` (ecsq), ``step``,
         ``loading``, ``kind`` (uniform), ``peak``, ``mu``, ``a`` (companders).
 
     Returns
@@ -255,21 +262,76 @@ def _lloyd(count, data, init, version, options):
     return cb, _samples_report(cb, rep, x)
 
 
+def _optimal_pdf_bins(count: int) -> int:
+    """Default histogram resolution of ``optimal`` on a PDF: 16 bins a level
+    (at least 4,096), at most :data:`MAX_DP_POINTS`."""
+    return min(max(4096, 16 * int(count)), MAX_DP_POINTS)
+
+
+def _optimal_pdf(model, count, version, bins, max_points):
+    """``optimal`` on a PDF model: the best of several Lloyd-Max polishes.
+
+    For a log-concave model the Lloyd-Max quantizer is the unique optimum
+    (Fleischer 1964), so it is the answer and nothing else is tried.
+    Otherwise (two-sided gamma, generalised Gaussian with shape < 1) the
+    symmetric Lloyd-Max design can be a saddle: e.g. for the gamma PDF an
+    asymmetric design with a level near the peak is better at every even L.
+    The candidates, each polished by Lloyd-Max on the PDF itself, are: the
+    symmetric design; an asymmetric start (the L-1 level design plus one
+    level beyond its top); and, up to ``MAX_DP_LEVELS`` levels, the global
+    optimum of a fine histogram of the PDF by dynamic programming, polished
+    symmetrically and, if its partition is clearly asymmetric, freely. The
+    lowest exact MSE wins.
+    """
+    lm_cb, lm_rep = lloyd_max_pdf(model, count, version=version)
+    if model.log_concave:
+        details = {"route": "lloyd-max", "log_concave": True}
+        return lm_cb, dataclasses.replace(lm_rep, method="optimal", details=details)
+    details = {"log_concave": False}
+    candidates = [("lloyd-max", lm_cb, lm_rep)]
+
+    def polish(name, init, symmetric):
+        cb, rep = lloyd_max_pdf(model, count, init=init, symmetric=symmetric, max_iter=500,
+                                version=version)
+        candidates.append((name, cb, rep))
+
+    if count > 2:
+        y = lloyd_max_pdf(model, count - 1)[0].levels
+        polish("asymmetric-polish", np.append(y, y[-1] + (y[-1] - y[-2])), False)
+    if count <= MAX_DP_LEVELS:
+        bins = _optimal_pdf_bins(count) if bins is None else int(bins)
+        c, w = pdf_histogram(model, bins)
+        dp_cb, dp_rep = optimal_histogram(c, w, count, version=version, max_points=max_points)
+        details.update(bins=bins, dp_mse=dp_rep.details["dp_mse"])
+        polish("dp+symmetric-polish", dp_cb, True)
+        z = dp_cb.levels - model.mean
+        if float(np.max(np.abs(z + z[::-1]))) > 2.0 * float(np.median(np.diff(c))):
+            polish("dp+polish", dp_cb, False)
+    else:
+        details["dp"] = f"skipped (more than {MAX_DP_LEVELS} levels)"
+    # the first candidate unless another is better beyond rounding (ties keep
+    # the symmetric design)
+    route, cb, rep = candidates[0]
+    for cand in candidates[1:]:
+        if cand[2].mse < rep.mse * (1.0 - 1e-12):
+            route, cb, rep = cand
+    details["route"] = route
+    details.update({f"mse_{name}": r.mse for name, _, r in candidates})
+    return cb, dataclasses.replace(rep, method="optimal", details=details)
+
+
 def _optimal(count, data, version, options):
     kind, payload = data
     _need_data(kind, "optimal")
-    bins = int(options.pop("bins", 4096))
+    bins = options.pop("bins", None)
     max_points = int(options.pop("max_points", MAX_DP_POINTS))
     _reject(options, "optimal")
+    # the merged histogram needs at least one point per level
+    max_points = max(max_points, count)
     if kind == "histogram":
         return optimal_histogram(*payload, count, version=version, max_points=max_points)
     if kind == "pdf":
-        c, w = pdf_histogram(payload, bins)
-        cb, rep = optimal_histogram(c, w, count, version=version, max_points=max_points)
-        # polish on the PDF itself: the DP result is in the optimum's basin
-        cb2, rep2 = lloyd_max_pdf(payload, count, init=cb, version=version)
-        details = dict(rep.details, bins=bins, polish_iterations=rep2.iterations)
-        return cb2, dataclasses.replace(rep2, method="optimal", details=details)
+        return _optimal_pdf(payload, count, version, bins, max_points)
     x = payload
     values, counts = np.unique(x, return_counts=True)
     cb, rep = optimal_histogram(values, counts.astype(np.float64), count, version=version,

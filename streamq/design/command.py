@@ -25,6 +25,7 @@ import re
 
 import numpy as np
 
+from streamq.design.optimal import MAX_DP_LEVELS
 from streamq.errors import StreamqError
 
 PDF_CHOICES = ("gaussian", "laplacian", "gamma", "uniform")
@@ -50,7 +51,10 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     size.add_argument("--levels", type=int, metavar="L", help="number of reconstruction levels")
     size.add_argument("--bits", type=int, metavar="B", help="bits per sample (L = 2**B)")
     p.add_argument("--method", choices=METHOD_CHOICES, default="lloyd-max",
-                   help="design method (default: lloyd-max)")
+                   help="design method (default: lloyd-max); optimal: globally optimal by "
+                        f"dynamic programming, at most {MAX_DP_LEVELS} levels on a file (any "
+                        "count for a PDF; for the log-concave gaussian, laplacian and uniform "
+                        "PDFs it is the Lloyd-Max design)")
     p.add_argument("--entropy", type=float, metavar="BITS",
                    help="target index entropy in bits/sample (ecsq)")
     p.add_argument("--json", action="store_true", help="print one JSON object instead of a table")

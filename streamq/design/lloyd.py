@@ -703,6 +703,7 @@ def lloyd_max_pdf(
     tol: float = 1e-12,
     max_iter: int = 5000,
     newton: bool = True,
+    symmetric: bool | None = None,
     record: bool = False,
     version: int = 0,
 ):
@@ -726,6 +727,13 @@ def lloyd_max_pdf(
     newton : bool
         Try a Newton step on the levels at each iteration (accepted only if
         it lowers the distortion; otherwise the Lloyd step is taken).
+    symmetric : bool, optional
+        Keep the levels symmetric about the model's mean (the start is
+        symmetrised first). Default: True without ``init``, False with one
+        (a warm start is followed wherever it leads). Every model here is
+        symmetric, and the symmetric iteration also removes the flat
+        common-shift direction that stalls Newton steps on exponential
+        tails.
     record : bool
         Keep the distortion after every iteration in ``report.history``.
 
@@ -762,7 +770,7 @@ def lloyd_max_pdf(
         if lv.size != count:
             raise StreamqError(f"init has {lv.size} levels but {count} were asked for")
         y = np.sort(np.array(lv, dtype=np.float64))
-    symmetric = init is None
+    symmetric = init is None if symmetric is None else bool(symmetric)
     if symmetric:
         y = _symmetrize(y, model.mean)
     t, m0, m1, m2 = _pdf_cells(model, y)

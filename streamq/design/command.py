@@ -22,6 +22,7 @@ import json
 import math
 import os
 import re
+import sys
 
 import numpy as np
 
@@ -240,6 +241,9 @@ def export(cb, rep, source, prefix: str) -> list:
 def run(args) -> int:
     """Run ``streamq design``; returns the exit status (bad input raises StreamqError)."""
     cb, rep, source = _design(args)
+    if rep.details.get("target_missed"):
+        print(f"streamq: warning: ecsq {rep.details.get('target_note', 'missed the target')}",
+              file=sys.stderr)
     if args.json:
         print(json.dumps(result_dict(cb, rep, source)))
     else:

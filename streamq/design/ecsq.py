@@ -12,7 +12,9 @@ end with fewer levels than it started with.
 
 A target entropy (bits/sample) is met by bisection on ``lambda``: ``H``
 falls as ``lambda`` grows. The result is the lowest-distortion design whose
-entropy does not exceed the target (within ``entropy_tol``).
+entropy does not exceed the target (within ``entropy_tol``); if the
+bisection cannot get there from the default start, other starts are tried
+(see :func:`ecsq_histogram`) and a remaining miss is flagged in the report.
 
 References
 ----------
@@ -94,22 +96,35 @@ def _lagrangian_lloyd(pre: HistogramPrefix, y, lam, tol, max_iter):
         J_prev = J
     if y.size >= 2:
         y, lengths, t = _boundaries(y, lengths, lam)
+        # the figures of the partition actually returned (the final
+        # boundaries moved since D and H were last measured)
+        b = np.concatenate(([0], np.searchsorted(cs, t), [n]))
+        s0 = p0[b[1:]] - p0[b[:-1]]
+        s1 = p1[b[1:]] - p1[b[:-1]]
+        s2 = p2[b[1:]] - p2[b[:-1]]
+        D = float(np.maximum(s2 - 2.0 * y * s1 + y * y * s0, 0.0).sum())
+        q = s0[s0 > 0.0]
+        H = max(-float(np.dot(q, np.log2(q))), 0.0) + 0.0
     else:
         t = np.zeros(0)
     return y, lengths, t, D, H, it, converged
 
 
-def _start_levels(pre: HistogramPrefix, count, init):
+def _start_levels(pre: HistogramPrefix, count, init, skew=0.0):
     if init is not None:
         lv = init.levels if isinstance(init, Codebook) else finite_array(init, "init")
         if lv.size > count:
             raise StreamqError(f"init has {lv.size} levels but at most {count} were asked for")
-        return np.sort(np.asarray(lv, dtype=np.float64)) - pre.ref
+        # unique: a padded codebook repeats its top level (equal levels would
+        # give 0/0 thresholds)
+        return np.unique(np.asarray(lv, dtype=np.float64)) - pre.ref
     w = pre.weights()
     nz = np.flatnonzero(w)
     lo, hi = float(pre.shifted[nz[0]]), float(pre.shifted[nz[-1]])
     step = (hi - lo) / count
-    return lo + (np.arange(count) + 0.5) * step
+    # skew shifts the levels by a fraction of a step: the end cells then
+    # differ in probability, which lets the multiplier break a symmetric start
+    return lo + (np.arange(count) + 0.5 + skew) * step
 
 
 def _to_codebook(pre, y, t, version):
@@ -119,6 +134,14 @@ def _to_codebook(pre, y, t, version):
             return Codebook(lv, t + pre.ref, version)
         except StreamqError:
             pass  # rounding merged two thresholds: fall back to midpoints
+    if lv.size == 1:
+        # one cell holds everything (zero rate): the second level a codebook
+        # needs goes beyond the data, so that the index entropy stays zero
+        w = pre.weights()
+        occ = pre.centers[w > 0]
+        v, top = float(lv[0]), float(occ[-1])
+        span = max(top - float(occ[0]), 1e-9 * max(1.0, abs(v)))
+        return Codebook([v, top + 2.0 * span], None, version)
     return Codebook(spread_levels(lv, max(2, lv.size)), None, version)
 
 
@@ -169,7 +192,24 @@ def ecsq_histogram(
         midpoints).
     report : DesignReport
         Figures w.r.t. the weighted histogram; ``details`` holds the
-        multiplier, the target and the number of designs tried.
+        multiplier, the target, the number of designs tried and the level
+        count of the start that won (``start_levels``). When the entropy
+        ends more than ``entropy_tol`` below the target (or, if nothing
+        reaches it, above), ``details["target_missed"]`` is True and
+        ``details["target_note"]`` says by how much and why.
+
+    Notes
+    -----
+    The Lagrangian iteration cannot always leave its start: on cells of
+    equal probability (a uniform PDF on the uniform start) every code
+    length is the same and the multiplier moves nothing, so the bisection
+    ends on a collapsed design. When the target is missed from the default
+    start, the design is retried from uniform starts with fewer levels
+    (``2**target`` rounded down and up, then powers of two up to ``levels``,
+    each with its neighbour of the other parity), then from skewed starts,
+    and the lowest-distortion design with entropy <= target is kept. A
+    target above the entropy of the least-distortion design (multiplier 0)
+    cannot be reached with ``levels`` levels; that design is returned.
 
     References
     ----------
@@ -187,48 +227,126 @@ def ecsq_histogram(
         return _report(pre, cb, 0, True, {"multiplier": 0.0, "target_bits": entropy})
     designs = 0
 
-    def run(lam):
+    def run(lam, start):
         nonlocal designs
         designs += 1
-        return _lagrangian_lloyd(pre, y0.copy(), lam, tol, max_iter)
+        return _lagrangian_lloyd(pre, start.copy(), lam, tol, max_iter)
 
     if multiplier is not None:
         lam = float(multiplier)
         if not (math.isfinite(lam) and lam >= 0):
             raise StreamqError(f"ecsq multiplier must be finite and >= 0, got {multiplier!r}")
-        y, _, t, D, H, it, conv = run(lam)
+        y, _, t, D, H, it, conv = run(lam, y0)
         cb = _to_codebook(pre, y, t, version)
         return _report(pre, cb, it, conv, {"multiplier": lam, "designs": designs})
 
-    target = float(entropy)
-    if not (math.isfinite(target) and target > 0):
-        raise StreamqError(f"ecsq target entropy must be positive bits/sample, got {entropy!r}")
-    best = run(0.0)
-    lam_lo, lam_best = 0.0, 0.0
-    if best[4] > target + 1e-12:
+    target = _positive(entropy, "ecsq target entropy", "bits/sample")
+    entropy_tol = _positive(entropy_tol, "ecsq entropy_tol", "bits", zero=True)
+    max_bisect = int(max_bisect)
+    if max_bisect < 1:
+        raise StreamqError(f"ecsq max_bisect must be at least 1, got {max_bisect}")
+
+    def feasible(res):
+        return res[4] <= target + 1e-12
+
+    def bisect(start):
+        """Lowest-distortion design from ``start`` with H <= target (bisection on lambda)."""
+        used = 1
+        best = run(0.0, start)
+        h0 = best[4]
+        lam_lo, lam_best = 0.0, 0.0
+        if feasible(best):
+            return best, lam_best, h0
         # bracket: H(lam) falls as lam grows; distortion-rate slope sets the scale
         lam_hi = max(best[3], 1e-300) * 2.0 * math.log(2.0)
-        hi = run(lam_hi)
-        while hi[4] > target and designs < max_bisect:
+        hi = run(lam_hi, start)
+        used += 1
+        while not feasible(hi) and used < max_bisect:
             lam_lo = lam_hi
             lam_hi *= 4.0
-            hi = run(lam_hi)
+            hi = run(lam_hi, start)
+            used += 1
         best, lam_best = hi, lam_hi
-        while designs < max_bisect and target - best[4] > entropy_tol:
+        while used < max_bisect and target - best[4] > entropy_tol:
             lam = 0.5 * (lam_lo + lam_hi) if lam_lo == 0 else math.sqrt(lam_lo * lam_hi)
             if lam_hi - lam_lo <= 1e-12 * lam_hi:
                 break
-            trial = run(lam)
-            if trial[4] <= target:
+            trial = run(lam, start)
+            used += 1
+            if feasible(trial):
                 lam_hi = lam
-                if trial[3] < best[3] or best[4] > target:
+                if trial[3] < best[3] or not feasible(best):
                     best, lam_best = trial, lam
             else:
                 lam_lo = lam
+        return best, lam_best, h0
+
+    def on_target(res):
+        return feasible(res) and target - res[4] <= entropy_tol
+
+    best, lam_best, h0 = bisect(y0)
+    start_levels = int(y0.size)
+    if not on_target(best) and h0 > target:
+        # The Lagrangian iteration cannot always leave its start: with cells
+        # of equal probability (a uniform PDF on a uniform start) every code
+        # length is the same, lambda moves nothing, and the bisection ends on
+        # a collapsed design. Retry from uniform starts with fewer levels
+        # (2**target rounded down and up, then powers of two up to L, each
+        # with its neighbour of the other parity), then, if none is on target,
+        # from skewed starts; keep the lowest-distortion design with
+        # H <= target.
+        starts = [(k, 0.0) for k in _retry_counts(target, count, start_levels)]
+        skewed = [(k, 0.25) for k in [count] + [k for k, _ in starts]]
+        for k, skew in starts + skewed:
+            if skew and on_target(best):
+                break  # skewed starts only when the centred ones did not do
+            if designs >= 8 * max_bisect:
+                break  # bounded work: the result is then flagged below
+            res, lam, _ = bisect(_start_levels(pre, k, None, skew))
+            if feasible(res) and (not feasible(best) or res[3] < best[3]):
+                best, lam_best, start_levels = res, lam, k
     y, _, t, D, H, it, conv = best
     cb = _to_codebook(pre, y, t, version)
-    return _report(pre, cb, it, conv, {"multiplier": lam_best, "target_bits": target,
-                                       "designs": designs})
+    details = {"multiplier": lam_best, "target_bits": target, "designs": designs,
+               "start_levels": start_levels}
+    if not on_target(best):
+        if h0 <= target:
+            why = (f"the {y0.size}-level design of least distortion has only {h0:.4f} bits "
+                   f"(more levels are needed to reach the target)")
+        else:
+            why = "no design closer below the target was found"
+        details["target_missed"] = True
+        details["target_note"] = (f"index entropy {H:.4f} bits misses the {target:g}-bit target "
+                                  f"by more than {entropy_tol:g} bits: {why}")
+    return _report(pre, cb, it, conv, details)
+
+
+def _positive(value, what, unit, zero=False):
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise StreamqError(f"{what} must be a number of {unit}, got {value!r}") from None
+    if not (math.isfinite(v) and (v >= 0 if zero else v > 0)):
+        sign = "non-negative" if zero else "positive"
+        raise StreamqError(f"{what} must be {sign} {unit}, got {value!r}")
+    return v
+
+
+def _retry_counts(target, count, tried):
+    """Start level counts to retry with: floor and ceil of 2**target, then
+    powers of two above it, each with its odd or even neighbour (a symmetric
+    start keeps its parity: below one bit a symmetric source wants an odd,
+    dead-zone design), all below ``count`` and other than ``tried``."""
+    ks = []
+    if target < math.log2(count):
+        base = 2.0 ** target
+        ks = [math.floor(base), math.ceil(base)]
+        p = 1 << max(math.ceil(target), 1)
+        while p < count:
+            ks.append(p)
+            p <<= 1
+        ks += [k + 1 for k in ks]
+    return sorted({k for k in ks if 2 <= k < count and k != tried})
 
 
 def _report(pre, cb, it, conv, details):

@@ -207,3 +207,23 @@ def test_command_bad_sizes(capsys):
         _run(["design", "--pdf", "gaussian", "--levels", "1"], capsys)
     with pytest.raises(SystemExit):
         _run(["design", "--pdf", "cauchy", "--levels", "4"], capsys)
+
+
+def test_command_ecsq_missed_target_warns(tmp_path, capsys):
+    parser = argparse.ArgumentParser(prog="streamq")
+    command.add_parser(parser.add_subparsers())
+    args = parser.parse_args(["design", "--pdf", "uniform", "--levels", "8", "--method", "ecsq",
+                              "--entropy", "2.5", "--json"])
+    assert args.func(args) == 0
+    cap = capsys.readouterr()
+    data = json.loads(cap.out)
+    assert data["entropy_bits"] <= 2.5 and len(data["levels"]) >= 4
+    assert data["details"]["target_missed"] is True
+    err = [line for line in cap.err.splitlines() if line.strip()]
+    assert len(err) == 1 and err[0].startswith("streamq: warning: ecsq") and "2.5-bit" in err[0]
+    # on target: no warning
+    args = parser.parse_args(["design", "--pdf", "uniform", "--levels", "8", "--method", "ecsq",
+                              "--entropy", "2", "--json"])
+    assert args.func(args) == 0
+    cap = capsys.readouterr()
+    assert cap.err == "" and json.loads(cap.out)["mse"] == pytest.approx(1 / 16, rel=1e-6)

@@ -196,3 +196,52 @@ def test_optimal_level_limits():
     # no more distinct values than levels: no programme, no limit
     cb, rep = design("optimal", 8192, samples=x[:5000])
     assert rep.mse == 0.0
+
+
+# -- ECSQ targets the Lagrangian iteration cannot reach from its start ---------
+
+
+@pytest.mark.parametrize("L", [4, 8, 16])
+def test_ecsq_uniform_pdf_integer_entropy_is_uniform_quantizer(L):
+    # common practice: for a uniform PDF at an integer entropy H, the uniform
+    # quantizer with 2**H equal cells is optimal; unit-variance uniform on
+    # +-sqrt(3): range 2 sqrt(3), MSE = (range / 4)**2 / 12 = 1/16 at H = 2
+    cb, rep = ecsq_pdf("uniform", L, entropy=2.0)
+    half = math.sqrt(3.0)
+    assert cb.size == 4
+    assert np.allclose(cb.levels, -half + (np.arange(4) + 0.5) * (2 * half / 4), atol=1e-6)
+    assert np.allclose(cb.thresholds, [-half / 2, 0.0, half / 2], atol=1e-6)
+    assert rep.entropy_bits == pytest.approx(2.0, abs=1e-6)
+    assert rep.mse == pytest.approx((2 * half / 4) ** 2 / 12, rel=1e-6)
+    assert rep.mse == pytest.approx(1 / 16, rel=1e-6)
+    assert "target_missed" not in rep.details
+
+
+def test_ecsq_uniform_pdf_between_integers_is_flagged_not_collapsed():
+    # before: two levels 1e-9 apart, MSE 1.0 and 1 bit; now the best design
+    # found below the target, flagged because it is not within entropy_tol
+    cb, rep = ecsq_pdf("uniform", 8, entropy=2.5)
+    assert rep.entropy_bits <= 2.5 + 1e-9
+    assert rep.mse < 1 / 16  # better than the 2-bit uniform quantizer
+    assert np.min(np.diff(cb.levels)) > 0.1
+    assert rep.details["target_missed"] is True
+    assert "2.5-bit target" in rep.details["target_note"]
+
+
+@pytest.mark.parametrize("name", ["gaussian", "laplacian"])
+def test_ecsq_below_one_bit_does_not_collapse(name):
+    # below 1 bit a symmetric source needs an odd (dead-zone) or skewed design;
+    # an even symmetric start used to collapse to one cell (MSE 1, reported 1 bit)
+    for L, target in ((8, 0.5), (2, 0.5), (8, 0.3)):
+        _, rep = ecsq_pdf(name, L, entropy=target, bins=16384)
+        assert target - 2e-3 <= rep.entropy_bits <= target + 1e-3
+        assert rep.mse < 0.8
+        assert "target_missed" not in rep.details
+
+
+def test_ecsq_unreachable_target_is_flagged():
+    # 4 levels cannot carry 2.5 bits: the least-distortion design is returned
+    _, rep = ecsq_pdf("laplacian", 4, entropy=2.5, bins=16384)
+    assert rep.entropy_bits < 2.0 + 1e-9
+    assert rep.details["target_missed"] is True
+    assert "more levels are needed" in rep.details["target_note"]

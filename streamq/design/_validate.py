@@ -15,6 +15,10 @@ from streamq.errors import StreamqError
 MIN_LEVELS = 2
 MAX_LEVELS = 65536
 
+#: Largest magnitude of a value designed on: squared errors and their sums
+#: over up to ~1e8 values must stay finite in float64 (max ~1.8e308).
+MAX_MAGNITUDE = 1e150
+
 
 def check_levels(levels, name: str = "levels") -> int:
     """Return ``levels`` as an int after checking 2 <= levels <= 65536."""
@@ -30,20 +34,43 @@ def check_levels(levels, name: str = "levels") -> int:
     return count
 
 
+def first_bad_value(arr: np.ndarray):
+    """First value of a float64 array that cannot be designed on.
+
+    Returns None if every value is finite with magnitude at most
+    :data:`MAX_MAGNITUDE`, else ``(position, what, why)``: ``what`` names
+    the value (``"a non-finite value (nan)"``, ``"a value too large to
+    design on (1e+200)"``) and ``why`` is an explanation to append (empty
+    or starting with ``"; "``).
+    """
+    with np.errstate(invalid="ignore"):
+        ok = np.abs(arr) <= MAX_MAGNITUDE  # False for NaN and inf too
+    if ok.all():
+        return None
+    bad = int(np.flatnonzero(~ok)[0])
+    v = float(arr.flat[bad])
+    if not np.isfinite(v):
+        return bad, f"a non-finite value ({v!r})", ""
+    return (bad, f"a value too large to design on ({v:g})",
+            f"; magnitudes above {MAX_MAGNITUDE:g} overflow the squared errors")
+
+
 def finite_array(values, name: str, *, allow_empty: bool = False) -> np.ndarray:
-    """Return ``values`` as a 1-D float64 array, rejecting NaN, inf and empty input."""
+    """Return ``values`` as a 1-D float64 array.
+
+    Rejects empty input, NaN and inf, and magnitudes above
+    :data:`MAX_MAGNITUDE` (whose squares overflow), naming the position.
+    """
     try:
         arr = np.asarray(values, dtype=np.float64)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):
         raise StreamqError(f"{name} must be numeric") from None
     arr = arr.reshape(-1)
     if arr.size == 0 and not allow_empty:
         raise StreamqError(f"{name} is empty")
-    if not np.isfinite(arr).all():
-        bad = int(np.flatnonzero(~np.isfinite(arr))[0])
-        raise StreamqError(
-            f"{name} has a non-finite value ({arr[bad]!r}) at position {bad}"
-        )
+    found = first_bad_value(arr)
+    if found is not None:
+        raise StreamqError(f"{name} has {found[1]} at position {found[0]}{found[2]}")
     return arr
 
 

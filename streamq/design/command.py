@@ -26,6 +26,7 @@ import sys
 
 import numpy as np
 
+from streamq.design._validate import first_bad_value
 from streamq.design.optimal import MAX_DP_LEVELS
 from streamq.errors import StreamqError
 
@@ -86,10 +87,11 @@ def _read_samples(path: str) -> np.ndarray:
     if data.size == 0:
         raise StreamqError(f"{path}: the file holds no samples")
     x = data.reshape(-1)
-    if not np.isfinite(x).all():
-        bad = int(np.flatnonzero(~np.isfinite(x))[0])
-        frame, channel = divmod(bad, data.shape[1])
-        raise StreamqError(f"{path}: non-finite sample at frame {frame}, channel {channel}")
+    found = first_bad_value(x)
+    if found is not None:
+        frame, channel = divmod(found[0], data.shape[1])
+        raise StreamqError(f"{path}: sample at frame {frame}, channel {channel} is {found[1]}"
+                           f"{found[2]}")
     return x
 
 

@@ -42,7 +42,12 @@ import numpy as np
 import scipy.linalg as sla
 
 from streamq.design._levels import codebook_from_levels, spread_levels
-from streamq.design._validate import check_levels, finite_array, histogram_arrays
+from streamq.design._validate import (
+    MAX_MAGNITUDE,
+    check_levels,
+    finite_array,
+    histogram_arrays,
+)
 from streamq.design.codebook import Codebook
 from streamq.design.pdfs import PdfModel, pdf_model
 from streamq.design.report import (
@@ -178,8 +183,8 @@ def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPre
             and c.shape == w.shape
             and math.isfinite(total)
             and total > 0.0
-            and math.isfinite(c[0])
-            and math.isfinite(c[-1])
+            and abs(c[0]) <= MAX_MAGNITUDE
+            and abs(c[-1]) <= MAX_MAGNITUDE
             and (c.size == 1 or bool((c[1:] >= c[:-1]).all()))
             and w.min() >= 0.0
         )

@@ -273,3 +273,17 @@ def test_training_file_problems(tmp_path, capsys):
         g.write_text(f'[graph]\nsample_rate = 8000\n[nodes.f]\nuse = "test-signal"\nseconds = 0.1\n'
                      f'[nodes.e]\nuse = "encoder"\ninput = "f"\ntrain = "{name}"\n')
         assert_clean(run(capsys, g, tmp_path / "o"), "node 'e', field 'train'", name, expect)
+
+
+@pytest.mark.parametrize("method", ["lloyd-max", "optimal", "uniform"])
+def test_design_from_a_file_with_huge_samples(tmp_path, capsys, method):
+    """`streamq design --from`: a finite sample whose square overflows (|x| ~ 1e200 in a
+    float64 file) is refused in one line naming the file and the sample, not a traceback
+    or an 'mse inf' result."""
+    x = noise(1000, channels=2)
+    x[123, 1] = -1e200
+    sf.write(str(tmp_path / "huge.wav"), x, 8000, subtype="DOUBLE")
+    res = run_cli(capsys, "design", "--from", tmp_path / "huge.wav", "--bits", "3",
+                  "--method", method, "--json")
+    assert_clean(res, "huge.wav", "frame 123, channel 1", "too large")
+    assert res.out == ""

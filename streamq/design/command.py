@@ -217,11 +217,25 @@ def format_c_header(cb, rep, source, prefix: str) -> str:
     ])
 
 
+def check_export_prefix(prefix: str) -> None:
+    """Refuse an ``--export`` prefix that cannot name the three files.
+
+    The prefix needs a file-name part (``fw/`` or ``.`` would write hidden
+    ``.json``/``.csv``/``.h`` files) and an existing folder. Checked before
+    designing, so that a long design is not lost to a typo.
+    """
+    folder, base = os.path.split(prefix)
+    if base in ("", ".", ".."):
+        raise StreamqError(f"--export {prefix!r}: give a file name prefix after the folder "
+                           f"(e.g. {os.path.join(folder or '.', 'codebook')!r})")
+    if folder and not os.path.isdir(folder):
+        what = "is not a folder" if os.path.exists(folder) else "does not exist"
+        raise StreamqError(f"--export: folder {folder} {what}")
+
+
 def export(cb, rep, source, prefix: str) -> list:
     """Write PREFIX.json, PREFIX.csv and PREFIX.h; return their paths."""
-    folder = os.path.dirname(prefix)
-    if folder and not os.path.isdir(folder):
-        raise StreamqError(f"--export: folder {folder} does not exist")
+    check_export_prefix(prefix)
     paths = [prefix + ".json", prefix + ".csv", prefix + ".h"]
     try:
         with open(paths[0], "w", encoding="utf-8") as fh:
@@ -242,6 +256,8 @@ def export(cb, rep, source, prefix: str) -> list:
 
 def run(args) -> int:
     """Run ``streamq design``; returns the exit status (bad input raises StreamqError)."""
+    if args.export is not None:
+        check_export_prefix(args.export)
     cb, rep, source = _design(args)
     if rep.details.get("target_missed"):
         print(f"streamq: warning: ecsq {rep.details.get('target_note', 'missed the target')}",
@@ -250,7 +266,7 @@ def run(args) -> int:
         print(json.dumps(result_dict(cb, rep, source)))
     else:
         print(format_table(cb, rep, source))
-    if args.export:
+    if args.export is not None:
         paths = export(cb, rep, source, args.export)
         if not args.json:
             print("wrote " + ", ".join(paths))

@@ -232,3 +232,26 @@ def test_command_ecsq_missed_target_warns(tmp_path, capsys):
     assert args.func(args) == 0
     cap = capsys.readouterr()
     assert cap.err == "" and json.loads(cap.out)["mse"] == pytest.approx(1 / 16, rel=1e-6)
+
+
+@pytest.mark.parametrize("prefix, fragment", [
+    ("{tmp}/", "give a file name prefix"),
+    ("{tmp}/.", "give a file name prefix"),
+    ("", "give a file name prefix"),
+    ("{tmp}/missing/fw", "folder {tmp}/missing does not exist"),
+    ("{tmp}/plain.txt/fw", "folder {tmp}/plain.txt is not a folder"),
+])
+def test_command_export_bad_prefix_refused_before_designing(tmp_path, capsys, prefix, fragment):
+    from streamq.cli import main
+
+    (tmp_path / "plain.txt").write_text("x")
+    prefix = prefix.format(tmp=tmp_path)
+    capsys.readouterr()
+    code = main(["design", "--pdf", "gaussian", "--levels", "8", "--export", prefix])
+    cap = capsys.readouterr()
+    assert code == 2
+    assert cap.out == ""  # refused before the table is printed
+    lines = [line for line in cap.err.splitlines() if line.strip()]
+    assert len(lines) == 1 and lines[0].startswith("streamq: --export")
+    assert fragment.format(tmp=tmp_path) in lines[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["plain.txt"]  # no hidden .json/.csv/.h

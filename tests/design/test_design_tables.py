@@ -12,6 +12,10 @@ to be off in the original tables.
 
 The SNR figures of the two papers are also reproduced in N. S. Jayant and
 P. Noll, Digital Coding of Waveforms (1984), Table 4.4 (from memory).
+
+The 32-level Laplacian column of Paez & Glisson was not available; that case
+is an independent scipy computation (scipy.stats, scipy.integrate.quad,
+scipy.optimize.root), not a table value.
 """
 
 import math
@@ -40,7 +44,9 @@ MAX_GAUSSIAN = {
     ),
 }
 
-# Paez & Glisson (1972), Table I (Laplacian), from memory
+# Paez & Glisson (1972), Table I (Laplacian), from memory. No 32-level entry:
+# the printed 32-level column was not available, so L = 32 is checked against
+# an independent scipy computation instead (test_laplacian_32_levels_scipy)
 PG_LAPLACIAN = {
     2: dict(x=[], y=[0.707], mse=0.5000),
     # 4-level distortion: not sure whether the table prints 0.1762 or 0.1765;
@@ -91,6 +97,56 @@ def test_paez_glisson_laplacian_table(L):
     assert np.allclose(x, row["x"], atol=1.5e-3, rtol=0)
     assert np.allclose(y, row["y"], atol=1.5e-3, rtol=0)
     assert rep.mse == pytest.approx(row["mse"], rel=1e-3)
+
+
+def _laplacian_lloyd_max_scipy(L):
+    """Unit-variance Laplacian Lloyd-Max quantizer computed with scipy only.
+
+    Independent of streamq: the density and cell probabilities come from
+    scipy.stats.laplace, the cell first and second moments from
+    scipy.integrate.quad, and the Lloyd-Max conditions (thresholds halfway
+    between levels, levels at the centroids of their cells; Lloyd 1957, Max
+    1960) are solved as the fixed point centroid(y) = y of the positive half
+    (symmetric design, middle threshold at 0) by scipy.optimize.root, started
+    from the compander rule (quantiles of p**(1/3), a Laplacian of three
+    times the scale).
+    """
+    from scipy import integrate, optimize, stats
+
+    dist = stats.laplace(scale=1 / math.sqrt(2))
+    n = L // 2
+
+    def cells(y):
+        return np.concatenate(([0.0], 0.5 * (y[1:] + y[:-1]), [np.inf]))
+
+    def centroids(y):
+        t = cells(y)
+        m0 = dist.sf(t[:-1]) - dist.sf(t[1:])
+        m1 = [integrate.quad(lambda x: x * dist.pdf(x), a, b, epsabs=0, epsrel=1e-13)[0]
+              for a, b in zip(t[:-1], t[1:])]
+        return np.array(m1) / m0
+
+    start = stats.laplace(scale=3 / math.sqrt(2)).ppf(0.5 + (np.arange(n) + 0.5) / L)
+    sol = optimize.root(lambda y: centroids(y) - y, start, method="hybr", tol=1e-13)
+    assert sol.success, sol.message
+    y = sol.x
+    t = cells(y)
+    mse = 2 * sum(integrate.quad(lambda x: (x - y[i]) ** 2 * dist.pdf(x), t[i], t[i + 1],
+                                 epsabs=0, epsrel=1e-12)[0] for i in range(n))
+    return t[1:-1], y, mse
+
+
+def test_laplacian_32_levels_scipy():
+    # independent scipy computation; the printed 32-level column of Paez &
+    # Glisson (1972) was not available, so this checks the same quantity
+    # (the 32-level Laplacian Lloyd-Max quantizer) without the table
+    x, y, mse = _laplacian_lloyd_max_scipy(32)
+    cb, rep = lloyd_max_pdf("laplacian", 32)
+    px, py = _positive_half(cb)
+    assert np.allclose(px, x, atol=1e-9, rtol=0)
+    assert np.allclose(py, y, atol=1e-9, rtol=0)
+    assert rep.mse == pytest.approx(mse, rel=1e-9)
+    assert rep.converged
 
 
 @pytest.mark.parametrize("name", sorted(SNR_DB))

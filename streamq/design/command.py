@@ -26,7 +26,7 @@ import sys
 
 import numpy as np
 
-from streamq.design._validate import first_bad_value
+from streamq.design._validate import check_levels, first_bad_value
 from streamq.design.optimal import MAX_DP_LEVELS
 from streamq.errors import StreamqError
 
@@ -68,7 +68,7 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
 
 def _level_count(args) -> int:
     if args.levels is not None:
-        return args.levels
+        return check_levels(args.levels, "--levels")
     bits = args.bits
     if bits < 1 or bits > 16:
         raise StreamqError(f"--bits must be between 1 and 16, got {bits}")

@@ -133,3 +133,52 @@ def test_subprocess_argument_error_is_one_line(tmp_path, graph):
     assert "usage:" not in proc.stderr and "Traceback" not in proc.stderr
     proc = cli()  # no command at all still prints the help, exit 2
     assert proc.returncode == 2 and "usage" in proc.stdout
+
+
+@pytest.fixture
+def design_files(tmp_path):
+    import numpy as np
+    import soundfile as sf
+
+    (tmp_path / "empty.wav").write_bytes(b"")
+    sf.write(str(tmp_path / "silent-zero-frames.wav"), np.zeros((0, 1)), 8000, subtype="FLOAT")
+    x = np.zeros((100, 2))
+    x[42, 1] = np.nan
+    sf.write(str(tmp_path / "nan.wav"), x, 8000, subtype="FLOAT")
+    (tmp_path / "plain").write_text("a file")
+    return tmp_path
+
+
+@pytest.mark.parametrize("argv, parts", [
+    (["--pdf", "gaussian", "--levels", "1"], ["--levels", "between 2 and 65536", "got 1"]),
+    (["--pdf", "gaussian", "--levels", "70000"], ["--levels", "between 2 and 65536", "70000"]),
+    (["--pdf", "gaussian", "--bits", "0"], ["--bits", "between 1 and 16", "got 0"]),
+    (["--pdf", "gaussian", "--bits", "17"], ["--bits", "between 1 and 16", "got 17"]),
+    (["--pdf", "gaussian", "--bits", "x"], ["--bits", "'x'"]),
+    (["--pdf", "gaussian", "--levels", "8", "--method", "ecsq"], ["--method ecsq needs --entropy"]),
+    (["--pdf", "gaussian", "--levels", "8", "--entropy", "2"], ["--entropy only applies"]),
+    (["--pdf", "gaussian", "--levels", "8", "--method", "ecsq", "--entropy", "nan"],
+     ["entropy", "positive", "nan"]),
+    (["--pdf", "gaussian", "--levels", "8", "--method", "ecsq", "--entropy", "-1"],
+     ["entropy", "positive", "-1"]),
+    (["--pdf", "gaussian", "--levels", "8", "--export", "DIR/"], ["--export", "file name prefix"]),
+    (["--pdf", "gaussian", "--levels", "8", "--export", "DIR/none/fw"],
+     ["--export", "DIR/none", "does not exist"]),
+    (["--pdf", "gaussian", "--levels", "8", "--export", "DIR/plain/fw"],
+     ["--export", "DIR/plain", "not a folder"]),
+    (["--from", "DIR/missing.wav", "--levels", "8"], ["DIR/missing.wav", "no such file"]),
+    (["--from", "DIR/empty.wav", "--levels", "8"], ["DIR/empty.wav", "cannot read audio"]),
+    (["--from", "DIR/silent-zero-frames.wav", "--levels", "8"],
+     ["DIR/silent-zero-frames.wav", "no samples"]),
+    (["--from", "DIR/nan.wav", "--levels", "8"],
+     ["DIR/nan.wav", "frame 42, channel 1", "non-finite"]),
+])
+def test_design_misuses(capsys, design_files, argv, parts):
+    """`streamq design` errors through main(): exit 2, one line naming the option,
+    the file and (for bad samples) the frame and channel; nothing on stdout."""
+    d = str(design_files)
+    res = run_cli(capsys, "design", *[a.replace("DIR", d) for a in argv])
+    assert_clean(res, *[p.replace("DIR", d) for p in parts])
+    assert res.out == ""
+    assert sorted(p.name for p in design_files.iterdir()) == [
+        "empty.wav", "nan.wav", "plain", "silent-zero-frames.wav"]

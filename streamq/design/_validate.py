@@ -34,6 +34,41 @@ def check_levels(levels, name: str = "levels") -> int:
     return count
 
 
+def check_integer(value, name: str, minimum: int | None = None) -> int:
+    """Return ``value`` as an int (an integral float is accepted), at least ``minimum``."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer, float, np.floating)):
+        raise StreamqError(f"{name} must be an integer, got {value!r}")
+    if isinstance(value, (float, np.floating)) and not float(value).is_integer():
+        raise StreamqError(f"{name} must be an integer, got {value!r}")
+    out = int(value)
+    if minimum is not None and out < minimum:
+        raise StreamqError(f"{name} must be at least {minimum}, got {out}")
+    return out
+
+
+def check_number(value, name: str, *, minimum: float | None = None,
+                 positive: bool = False) -> float:
+    """Return ``value`` as a finite float (``>= minimum``, or ``> 0`` if ``positive``)."""
+    if isinstance(value, bool):
+        raise StreamqError(f"{name} must be a number, got {value!r}")
+    try:
+        out = float(value)
+    except (TypeError, ValueError, OverflowError):
+        raise StreamqError(f"{name} must be a number, got {value!r}") from None
+    if not np.isfinite(out):
+        raise StreamqError(f"{name} must be finite, got {value!r}")
+    if positive and not out > 0:
+        raise StreamqError(f"{name} must be positive, got {value!r}")
+    if minimum is not None and out < minimum:
+        raise StreamqError(f"{name} must be at least {minimum:g}, got {value!r}")
+    return out
+
+
+def check_stopping(tol, max_iter) -> tuple[float, int]:
+    """Check an iteration's stopping rule: ``tol`` finite and >= 0, ``max_iter`` an int >= 0."""
+    return check_number(tol, "tol", minimum=0.0), check_integer(max_iter, "max_iter", 0)
+
+
 def first_bad_value(arr: np.ndarray):
     """First value of a float64 array that cannot be designed on.
 

@@ -40,7 +40,13 @@ import math
 
 import numpy as np
 
-from streamq.design._validate import check_levels, finite_array, histogram_arrays
+from streamq.design._validate import (
+    check_integer,
+    check_levels,
+    check_number,
+    finite_array,
+    histogram_arrays,
+)
 from streamq.design.codebook import Codebook
 from streamq.design.compander import (
     compander_codebook,
@@ -200,7 +206,7 @@ def design(method: str, levels=None, *, pdf=None, centers=None, weights=None, sa
     options = dict(options)
     data = _data(pdf, centers, weights, samples, options)
     kind, payload = data
-    version = int(options.pop("version", 0))
+    version = check_integer(options.pop("version", 0), "version")
     if key in ("g711-mu", "g711-a"):
         law = "mu" if key == "g711-mu" else "a"
         allowed = (255, 256) if law == "mu" else (256,)
@@ -249,7 +255,7 @@ def _lloyd(count, data, init, version, options):
         return lloyd_max_pdf(payload, count, init=init, version=version, **options)
     allowed = {"tol", "max_iter", "record", "bins"}
     _reject({k: v for k, v in options.items() if k not in allowed}, "lloyd-max")
-    bins = int(options.pop("bins", 65536))
+    bins = check_integer(options.pop("bins", 65536), "bins", 1)
     if kind == "histogram":
         c, w = payload
         return lloyd_max_histogram(c, w, count, init=init, version=version, **options)
@@ -299,7 +305,7 @@ def _optimal_pdf(model, count, version, bins, max_points):
         y = lloyd_max_pdf(model, count - 1)[0].levels
         polish("asymmetric-polish", np.append(y, y[-1] + (y[-1] - y[-2])), False)
     if count <= MAX_DP_LEVELS:
-        bins = _optimal_pdf_bins(count) if bins is None else int(bins)
+        bins = _optimal_pdf_bins(count) if bins is None else bins
         c, w = pdf_histogram(model, bins)
         dp_cb, dp_rep = optimal_histogram(c, w, count, version=version, max_points=max_points)
         details.update(bins=bins, dp_mse=dp_rep.details["dp_mse"])
@@ -324,7 +330,8 @@ def _optimal(count, data, version, options):
     kind, payload = data
     _need_data(kind, "optimal")
     bins = options.pop("bins", None)
-    max_points = int(options.pop("max_points", MAX_DP_POINTS))
+    bins = None if bins is None else check_integer(bins, "bins", 2)
+    max_points = check_integer(options.pop("max_points", MAX_DP_POINTS), "max_points", 1)
     _reject(options, "optimal")
     # the merged histogram needs at least one point per level
     max_points = max(max_points, count)
@@ -342,7 +349,7 @@ def _optimal(count, data, version, options):
 def _ecsq(count, data, init, version, options):
     kind, payload = data
     _need_data(kind, "ecsq")
-    bins = int(options.pop("bins", 65536))
+    bins = check_integer(options.pop("bins", 65536), "bins", 1)
     allowed = {"entropy", "multiplier", "tol", "max_iter", "entropy_tol", "max_bisect"}
     _reject({k: v for k, v in options.items() if k not in allowed}, "ecsq")
     if kind == "pdf":
@@ -359,10 +366,10 @@ def _uniform(count, data, version, options):
     step = options.pop("step", None)
     loading = options.pop("loading", None)
     qkind = options.pop("kind", "mid-rise")
-    bins = int(options.pop("bins", 65536))
+    bins = check_integer(options.pop("bins", 65536), "bins", 1)
     if kind is None:
-        std = float(options.pop("std", 1.0))
-        center = float(options.pop("mean", 0.0))
+        std = check_number(options.pop("std", 1.0), "std", positive=True)
+        center = check_number(options.pop("mean", 0.0), "mean")
         _reject(options, "uniform")
         if step is None and loading is None:
             raise StreamqError("uniform without data needs step= or loading=")
@@ -391,9 +398,9 @@ def _compander_law(key, count, data, version, options):
         default_peak = abs(payload.mean) + 4.0 * payload.std
     else:
         default_peak = 1.0
-    peak = float(options.pop("peak", default_peak))
-    mu = float(options.pop("mu", 255.0))
-    a = float(options.pop("a", 87.6))
+    peak = check_number(options.pop("peak", default_peak), "peak", positive=True)
+    mu = check_number(options.pop("mu", 255.0), "mu", positive=True)
+    a = check_number(options.pop("a", 87.6), "a", minimum=1.0)
     qkind = options.pop("kind", "mid-rise")
     _reject(options, key)
     cb = compander_codebook(law, count, peak=peak, mu=mu, a=a, kind=qkind, version=version)
@@ -406,7 +413,7 @@ def _compander_law(key, count, data, version, options):
 def _optimal_compander(count, data, version, options):
     kind, payload = data
     _need_data(kind, "compander")
-    bins = int(options.pop("bins", 65536))
+    bins = check_integer(options.pop("bins", 65536), "bins", 1)
     _reject(options, "compander")
     if kind == "pdf":
         return optimal_compander_pdf(payload, count, version=version)

@@ -59,7 +59,10 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
                         "PDFs it is the Lloyd-Max design)")
     p.add_argument("--entropy", type=float, metavar="BITS",
                    help="target index entropy in bits/sample (ecsq)")
-    p.add_argument("--json", action="store_true", help="print one JSON object instead of a table")
+    p.add_argument("--json", action="store_true",
+                   help="print one JSON object instead of a table; snr_db is the string \"inf\" "
+                        "when the MSE is zero (e.g. no more distinct values than levels) and "
+                        "\"-inf\" when the signal power is zero but the MSE is not")
     p.add_argument("--export", metavar="PREFIX",
                    help="also write PREFIX.json, PREFIX.csv and PREFIX.h")
     p.set_defaults(func=run)

@@ -38,7 +38,7 @@ import math
 
 import numpy as np
 
-from streamq.design._validate import check_levels
+from streamq.design._validate import check_levels, check_number
 from streamq.design.codebook import Codebook
 from streamq.design.lloyd import histogram_prefix
 from streamq.design.pdfs import PdfModel, pdf_model
@@ -64,17 +64,11 @@ G711_LAWS = ("mu", "a")
 
 
 def _check_peak(peak):
-    peak = float(peak)
-    if not (math.isfinite(peak) and peak > 0):
-        raise StreamqError(f"compander peak must be finite and > 0, got {peak!r}")
-    return peak
+    return check_number(peak, "compander peak", positive=True)
 
 
 def _check_param(value, name, minimum):
-    value = float(value)
-    if not (math.isfinite(value) and value >= minimum):
-        raise StreamqError(f"{name} must be finite and >= {minimum}, got {value!r}")
-    return value
+    return check_number(value, name, minimum=minimum)
 
 
 def mu_law_compress(x, mu: float = 255.0, peak: float = 1.0):

@@ -32,7 +32,13 @@ import math
 import numpy as np
 
 from streamq.design._levels import spread_levels
-from streamq.design._validate import check_levels, finite_array
+from streamq.design._validate import (
+    check_integer,
+    check_levels,
+    check_number,
+    check_stopping,
+    finite_array,
+)
 from streamq.design.codebook import Codebook
 from streamq.design.lloyd import HistogramPrefix, histogram_prefix
 from streamq.design.pdfs import PdfModel, pdf_histogram, pdf_model
@@ -218,6 +224,7 @@ def ecsq_histogram(
     """
     pre = prefix if prefix is not None else histogram_prefix(centers, weights)
     count = check_levels(levels)
+    tol, max_iter = check_stopping(tol, max_iter)
     if (entropy is None) == (multiplier is None):
         raise StreamqError("ecsq needs exactly one of entropy=BITS (target) or multiplier=LAMBDA")
     y0 = _start_levels(pre, count, init)
@@ -233,18 +240,14 @@ def ecsq_histogram(
         return _lagrangian_lloyd(pre, start.copy(), lam, tol, max_iter)
 
     if multiplier is not None:
-        lam = float(multiplier)
-        if not (math.isfinite(lam) and lam >= 0):
-            raise StreamqError(f"ecsq multiplier must be finite and >= 0, got {multiplier!r}")
+        lam = check_number(multiplier, "ecsq multiplier", minimum=0.0)
         y, _, t, D, H, it, conv = run(lam, y0)
         cb = _to_codebook(pre, y, t, version)
         return _report(pre, cb, it, conv, {"multiplier": lam, "designs": designs})
 
-    target = _positive(entropy, "ecsq target entropy", "bits/sample")
-    entropy_tol = _positive(entropy_tol, "ecsq entropy_tol", "bits", zero=True)
-    max_bisect = int(max_bisect)
-    if max_bisect < 1:
-        raise StreamqError(f"ecsq max_bisect must be at least 1, got {max_bisect}")
+    target = check_number(entropy, "ecsq target entropy (bits/sample)", positive=True)
+    entropy_tol = check_number(entropy_tol, "ecsq entropy_tol", minimum=0.0)
+    max_bisect = check_integer(max_bisect, "ecsq max_bisect", 1)
 
     def feasible(res):
         return res[4] <= target + 1e-12
@@ -319,17 +322,6 @@ def ecsq_histogram(
         details["target_note"] = (f"index entropy {H:.4f} bits misses the {target:g}-bit target "
                                   f"by more than {entropy_tol:g} bits: {why}")
     return _report(pre, cb, it, conv, details)
-
-
-def _positive(value, what, unit, zero=False):
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise StreamqError(f"{what} must be a number of {unit}, got {value!r}") from None
-    if not (math.isfinite(v) and (v >= 0 if zero else v > 0)):
-        sign = "non-negative" if zero else "positive"
-        raise StreamqError(f"{what} must be {sign} {unit}, got {value!r}")
-    return v
 
 
 def _retry_counts(target, count, tried):

@@ -45,6 +45,7 @@ from streamq.design._levels import codebook_from_levels, spread_levels
 from streamq.design._validate import (
     MAX_MAGNITUDE,
     check_levels,
+    check_stopping,
     finite_array,
     histogram_arrays,
 )
@@ -522,10 +523,8 @@ def lloyd_max_histogram(
             raise StreamqError("give the number of levels or an init codebook")
         levels = init.size if isinstance(init, Codebook) else np.asarray(init).size
     count = check_levels(levels)
+    tol, max_iter = check_stopping(tol, max_iter)
     y = _initial_levels(pre, count, init)
-    max_iter = int(max_iter)
-    if max_iter < 0:
-        raise StreamqError(f"max_iter must be non-negative, got {max_iter}")
     history = None
     if pre.occupied == 1:
         # constant signal: one value, spare levels spread around it
@@ -535,7 +534,7 @@ def lloyd_max_histogram(
         it, converged = 0, False
         lv = y + pre.ref
     else:
-        y, it, converged, history, stuck = _lloyd_core(pre, y, float(tol), max_iter, record)
+        y, it, converged, history, stuck = _lloyd_core(pre, y, tol, max_iter, record)
         lv = y + pre.ref
         if stuck is not None:
             # every occupied cell is pure: keep the levels that own data and
@@ -550,7 +549,7 @@ def lloyd_max_histogram(
             lv = spread_levels(kept, count)
     cb, mse, probs = _finish_histogram(pre, lv, count, version)
     p = probs[probs > 0.0]
-    entropy = max(-float(p.dot(np.log2(p))), 0.0)
+    entropy = max(-float(p.dot(np.log2(p))), 0.0) + 0.0  # never -0.0
     rep = DesignReport(
         method=method,
         size=count,
@@ -768,6 +767,7 @@ def lloyd_max_pdf(
     """
     model = pdf if isinstance(pdf, PdfModel) else pdf_model(pdf)
     count = check_levels(levels)
+    tol, max_iter = check_stopping(tol, max_iter)
     if init is None:
         y = np.asarray(model.cube_root_ppf((np.arange(count) + 0.5) / count), dtype=np.float64)
     else:

@@ -9,7 +9,9 @@ figures are measured against the data the design was made for:
 
 ``snr_db`` is ``10 log10(power / mse)`` with ``power`` the mean square of the
 signal (its variance plus the square of its mean; for the zero-mean PDFs of
-the published tables this is the variance). A zero MSE gives ``inf`` dB.
+the published tables this is the variance). A zero MSE gives ``inf`` dB and
+a zero power with a non-zero MSE ``-inf`` dB (in :meth:`DesignReport.to_dict`
+and the JSON of ``streamq design``: the strings ``"inf"`` and ``"-inf"``).
 ``entropy_bits`` is the entropy of the index, ``-sum p_i log2 p_i`` over the
 cells' probabilities.
 """
@@ -80,7 +82,7 @@ class DesignReport:
 
         def clean(v):
             if isinstance(v, (float, np.floating)):
-                v = float(v)
+                v = float(v) + 0.0  # never a negative zero ("-0.0") in JSON
                 if math.isinf(v):
                     return "inf" if v > 0 else "-inf"
                 if math.isnan(v):
@@ -126,7 +128,8 @@ def index_entropy(probabilities) -> float:
     if not total > 0:
         return 0.0
     p = p[p > 0] / total
-    return float(max(-np.dot(p, np.log2(p)), 0.0))
+    # max(-0.0, 0.0) is -0.0; adding 0.0 turns a negative zero into 0.0
+    return float(max(-np.dot(p, np.log2(p)), 0.0)) + 0.0
 
 
 def evaluate_pdf(levels, thresholds, model):

@@ -2,6 +2,7 @@
 
 import argparse
 import json
+import math
 import shutil
 import subprocess
 
@@ -102,6 +103,19 @@ def test_g711_and_compander_without_data():
         (("ecsq", 8), {"pdf": "gaussian"}, "entropy"),
         (("uniform", 8), {}, "step"),
         (("lloyd-max", 8), {"pdf": "gaussian", "bogus": 1}, "bogus"),
+        (("lloyd-max", 8), {"pdf": "gaussian", "tol": float("nan")}, "tol must be finite"),
+        (("lloyd-max", 8), {"samples": SAMPLES, "tol": float("nan")}, "tol must be finite"),
+        (("lloyd-max", 8), {"pdf": "gaussian", "tol": -1e-3}, "tol must be at least 0"),
+        (("lloyd-max", 8), {"pdf": "gaussian", "max_iter": -1}, "max_iter must be at least 0"),
+        (("lloyd-max", 8), {"samples": SAMPLES, "max_iter": -1}, "max_iter must be at least 0"),
+        (("lloyd-max", 8), {"pdf": "gaussian", "max_iter": "many"}, "max_iter must be an integer"),
+        (("ecsq", 8), {"pdf": "gaussian", "entropy": 2.0, "max_iter": -1}, "max_iter"),
+        (("ecsq", 8), {"pdf": "gaussian", "entropy": 2.0, "tol": float("nan")}, "tol"),
+        (("ecsq", 8), {"pdf": "gaussian", "entropy": "abc"}, "entropy .* must be a number.*'abc'"),
+        (("ecsq", 8), {"pdf": "gaussian", "multiplier": "x"}, "multiplier must be a number"),
+        (("lloyd-max", 8), {"pdf": "gaussian", "version": "v1"}, "version must be an integer.*'v1'"),
+        (("lloyd-max", 8), {"samples": SAMPLES, "bins": "abc"}, "bins must be an integer"),
+        (("mu-law", 8), {"mu": "abc"}, "mu must be a number"),
     ],
 )
 def test_dispatcher_errors(args, kwargs, fragment):
@@ -113,6 +127,22 @@ def test_report_to_dict_is_json_ready():
     _, rep = design("lloyd-max", 4, samples=np.repeat([0.0, 1.0], 10))
     text = json.dumps(rep.to_dict())
     assert json.loads(text)["snr_db"] == "inf"
+    # a quantizer without a zero level on an all-zero signal: power 0, MSE > 0
+    _, rep = design("mu-law", 8, samples=np.zeros(10))
+    assert rep.mse > 0 and rep.to_dict()["snr_db"] == "-inf"
+
+
+def test_entropy_is_never_negative_zero():
+    # one cell holds everything: the entropy is 0.0, printed as 0.0, not -0.0
+    from streamq.design import index_entropy
+
+    assert math.copysign(1.0, index_entropy([1.0, 0.0])) == 1.0
+    for kw in ({"samples": np.full(50, 0.25)},
+               {"centers": [0.25], "weights": [3.0]}):
+        _, rep = design("lloyd-max", 4, **kw)
+        assert rep.entropy_bits == 0.0 and math.copysign(1.0, rep.entropy_bits) == 1.0
+        assert '"entropy_bits": 0.0' in json.dumps(rep.to_dict())
+        assert "-0.0" not in json.dumps(rep.to_dict())
 
 
 # -- command -----------------------------------------------------------------

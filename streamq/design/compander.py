@@ -72,7 +72,16 @@ def _check_param(value, name, minimum):
 
 
 def mu_law_compress(x, mu: float = 255.0, peak: float = 1.0):
-    """Continuous mu-law compressor ``V sgn(x) ln(1 + mu|x|/V) / ln(1 + mu)``."""
+    """Continuous mu-law compressor ``V sgn(x) ln(1 + mu|x|/V) / ln(1 + mu)``.
+
+    References
+    ----------
+    .. [1] B. Smith, "Instantaneous companding of quantized signals", Bell
+       System Technical Journal 36, 1957.
+    .. [2] ITU-T Recommendation G.711, "Pulse code modulation (PCM) of voice
+       frequencies", 1988 (mu = 255; its 8-bit code approximates this curve
+       by segments).
+    """
     peak = _check_peak(peak)
     mu = _check_param(mu, "mu", 1e-12)
     x = np.asarray(x, dtype=np.float64)
@@ -80,7 +89,15 @@ def mu_law_compress(x, mu: float = 255.0, peak: float = 1.0):
 
 
 def mu_law_expand(y, mu: float = 255.0, peak: float = 1.0):
-    """Inverse of :func:`mu_law_compress`."""
+    """Inverse of :func:`mu_law_compress`.
+
+    References
+    ----------
+    .. [1] B. Smith, "Instantaneous companding of quantized signals", Bell
+       System Technical Journal 36, 1957.
+    .. [2] ITU-T Recommendation G.711, "Pulse code modulation (PCM) of voice
+       frequencies", 1988.
+    """
     peak = _check_peak(peak)
     mu = _check_param(mu, "mu", 1e-12)
     y = np.asarray(y, dtype=np.float64)
@@ -88,7 +105,19 @@ def mu_law_expand(y, mu: float = 255.0, peak: float = 1.0):
 
 
 def a_law_compress(x, a: float = 87.6, peak: float = 1.0):
-    """Continuous A-law compressor (linear below ``V/A``, logarithmic above)."""
+    """Continuous A-law compressor (linear below ``V/A``, logarithmic above).
+
+    ``V sgn(x) A|x|/V / (1 + ln A)`` for ``|x|/V < 1/A``, else
+    ``V sgn(x) (1 + ln(A|x|/V)) / (1 + ln A)``.
+
+    References
+    ----------
+    .. [1] ITU-T Recommendation G.711, "Pulse code modulation (PCM) of voice
+       frequencies", 1988 (A = 87.6; its 8-bit code approximates this curve
+       by 13 segments).
+    .. [2] N. S. Jayant and P. Noll, *Digital Coding of Waveforms*,
+       Prentice-Hall, 1984 (logarithmic companding: mu-law and A-law).
+    """
     peak = _check_peak(peak)
     a = _check_param(a, "A", 1.0)
     x = np.asarray(x, dtype=np.float64)
@@ -100,7 +129,15 @@ def a_law_compress(x, a: float = 87.6, peak: float = 1.0):
 
 
 def a_law_expand(y, a: float = 87.6, peak: float = 1.0):
-    """Inverse of :func:`a_law_compress`."""
+    """Inverse of :func:`a_law_compress`.
+
+    References
+    ----------
+    .. [1] ITU-T Recommendation G.711, "Pulse code modulation (PCM) of voice
+       frequencies", 1988.
+    .. [2] N. S. Jayant and P. Noll, *Digital Coding of Waveforms*,
+       Prentice-Hall, 1984 (logarithmic companding: mu-law and A-law).
+    """
     peak = _check_peak(peak)
     a = _check_param(a, "A", 1.0)
     y = np.asarray(y, dtype=np.float64)
@@ -254,7 +291,8 @@ def g711_encode(samples, law: str) -> np.ndarray:
 
     References
     ----------
-    .. [1] ITU-T Recommendation G.711, 1988.
+    .. [1] ITU-T Recommendation G.711, "Pulse code modulation (PCM) of voice
+       frequencies", 1988.
     """
     key = _law(law)
     x = np.asarray(samples)
@@ -271,6 +309,20 @@ def g711_decode(codes, law: str) -> np.ndarray:
     """G.711 decoding of 8-bit codes to 16-bit linear PCM (int16).
 
     Bit-exact with ``audioop`` ``ulaw2lin``/``alaw2lin`` with width 2.
+
+    Parameters
+    ----------
+    codes : array_like of uint8
+    law : {"mu", "a"} (also "mu-law", "a-law")
+
+    Returns
+    -------
+    ndarray of int16, same shape
+
+    References
+    ----------
+    .. [1] ITU-T Recommendation G.711, "Pulse code modulation (PCM) of voice
+       frequencies", 1988.
     """
     key = _law(law)
     c = np.asarray(codes)
@@ -314,6 +366,11 @@ def g711_codebook(law: str, version: int = 0) -> Codebook:
     ``encode(k / 32768)`` is the rank of G.711's code for ``k`` and
     ``decode`` gives its decoded value / 32768, for every int16 ``k``. Use
     :func:`g711_code_map` to translate ranks to bytes.
+
+    References
+    ----------
+    .. [1] ITU-T Recommendation G.711, "Pulse code modulation (PCM) of voice
+       frequencies", 1988.
     """
     key = _law(law)
     tab = _tables(key)
@@ -370,6 +427,13 @@ def optimal_compander_histogram(centers, weights, levels: int, *, version: int =
     codebook : Codebook
     report : DesignReport
         Figures w.r.t. the weighted histogram.
+
+    References
+    ----------
+    .. [1] W. R. Bennett, "Spectra of quantized signals", Bell System
+       Technical Journal 27, 1948.
+    .. [2] P. F. Panter and W. Dite, "Quantization distortion in pulse-count
+       modulation with nonuniform spacing of levels", Proc. IRE 39, 1951.
     """
     pre = histogram_prefix(centers, weights)
     count = check_levels(levels)

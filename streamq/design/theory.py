@@ -66,7 +66,16 @@ def panter_dite_mse(pdf, rate) -> float:
 
 
 def gaussian_rd_mse(rate, variance: float = 1.0) -> float:
-    """Gaussian rate-distortion bound ``sigma^2 2**(-2R)``."""
+    """Gaussian rate-distortion bound ``sigma^2 2**(-2R)``.
+
+    The least MSE any code at ``rate`` bits/sample can reach on a
+    memoryless Gaussian source of the given variance.
+
+    References
+    ----------
+    .. [1] C. E. Shannon, "Coding theorems for a discrete source with a
+       fidelity criterion", IRE National Convention Record, 1959.
+    """
     r = _rate(rate)
     v = float(variance)
     if not (math.isfinite(v) and v > 0):
@@ -75,7 +84,13 @@ def gaussian_rd_mse(rate, variance: float = 1.0) -> float:
 
 
 def gaussian_rd_snr_db(rate) -> float:
-    """SNR of the Gaussian rate-distortion bound, ``20 log10(2) R`` (6.02 dB/bit)."""
+    """SNR of the Gaussian rate-distortion bound, ``20 log10(2) R`` (6.02 dB/bit).
+
+    References
+    ----------
+    .. [1] C. E. Shannon, "Coding theorems for a discrete source with a
+       fidelity criterion", IRE National Convention Record, 1959.
+    """
     return 20.0 * math.log10(2.0) * _rate(rate)
 
 
@@ -84,6 +99,11 @@ def pcm_sine_snr_db(bits) -> float:
 
     Power ``A^2/2`` over noise ``d^2/12`` with ``d = 2A / 2**N``:
     ``10 log10(1.5) + 20 log10(2) N``.
+
+    References
+    ----------
+    .. [1] W. R. Bennett, "Spectra of quantized signals", Bell System
+       Technical Journal 27, 1948 (uniform quantization noise ``d^2/12``).
     """
     n = _rate(bits)
     return 10.0 * math.log10(1.5) + 20.0 * math.log10(2.0) * n

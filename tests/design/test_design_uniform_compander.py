@@ -1,9 +1,10 @@
 """Uniform quantizers, companders, G.711 and the high-rate theory.
 
 Sources named beside each check: Max (1960) optimum uniform steps, the
-6.02 N + 1.76 dB rule (common practice), Python's audioop (stdlib on 3.11/
-3.12, audioop-lts on 3.13+) for G.711, Panter & Dite (1951), the Gaussian
-rate-distortion function (Shannon 1959).
+6.02 N + 1.76 dB rule (common practice), Smith (1957) for the continuous
+mu-law, Jayant & Noll (1984) for the continuous A-law, Python's audioop
+(stdlib on 3.11/3.12, audioop-lts on 3.13+) for G.711, Panter & Dite (1951),
+the Gaussian rate-distortion function (Shannon 1959).
 """
 
 import math
@@ -102,15 +103,29 @@ def test_mu_and_a_law_round_trip_and_shape():
     x = np.linspace(-2, 2, 2001)
     assert np.allclose(mu_law_expand(mu_law_compress(x, peak=2), peak=2), x, atol=1e-12)
     assert np.allclose(a_law_expand(a_law_compress(x, peak=2), peak=2), x, atol=1e-12)
-    # G.711 parameters: mu = 255 compresses 1% of peak to about 23% (ITU-T G.711)
+    # continuous mu-law c(x) = ln(1 + mu x) / ln(1 + mu) (Smith 1957), at
+    # G.711's mu = 255: 1 % of peak compresses to about 23 %
     assert mu_law_compress(0.01) == pytest.approx(math.log1p(2.55) / math.log1p(255))
-    # A-law is linear below peak/A with slope A / (1 + ln A) = 16 (ITU-T G.711)
-    assert a_law_compress(0.001) / 0.001 == pytest.approx(87.6 / (1 + math.log(87.6)))
+    # continuous A-law (Jayant & Noll 1984) is linear below peak/A with slope
+    # A / (1 + ln A), about 16 at G.711's A = 87.6
+    slope = a_law_compress(0.001) / 0.001
+    assert slope == pytest.approx(87.6 / (1 + math.log(87.6)))
+    # ITU-T G.711's 13-segment A-law approximates that curve: its central
+    # segment (bit-exact codec, checked against audioop below) has steps of 16
+    # int16 units where a uniform 8-bit quantizer has 65536 / 256 = 256, i.e.
+    # slope 256 / 16 = 16, within 0.1 % of the continuous A / (1 + ln A)
+    k = np.arange(-300, 300).astype(np.int16)
+    codes = g711_encode(k, "a")
+    steps = np.diff(k[np.flatnonzero(codes[1:] != codes[:-1]) + 1])
+    assert set(steps.tolist()) == {16}
+    assert slope == pytest.approx(256 / 16, rel=1e-3)
 
 
 @pytest.mark.parametrize("law", ["mu-law", "a-law"])
 @pytest.mark.parametrize("L", [16, 256, 1024])
 def test_compander_codebook_is_expanded_uniform(law, L):
+    # common practice: a compander quantizer is compressor, uniform quantizer,
+    # expander; so the compressed thresholds and levels are equally spaced
     cb = compander_codebook(law, L, peak=0.8)
     comp = mu_law_compress if law == "mu-law" else a_law_compress
     y = comp(cb.levels, peak=0.8)

@@ -19,6 +19,8 @@ MAX_LEVELS = 65536
 #: over up to ~1e8 values must stay finite in float64 (max ~1.8e308).
 MAX_MAGNITUDE = 1e150
 
+_INF = float("inf")
+
 
 def check_levels(levels, name: str = "levels") -> int:
     """Return ``levels`` as an int after checking 2 <= levels <= 65536."""
@@ -66,6 +68,9 @@ def check_number(value, name: str, *, minimum: float | None = None,
 
 def check_stopping(tol, max_iter) -> tuple[float, int]:
     """Check an iteration's stopping rule: ``tol`` finite and >= 0, ``max_iter`` an int >= 0."""
+    # the common case first: this runs on every streaming design call
+    if type(tol) is float and type(max_iter) is int and 0.0 <= tol < _INF and max_iter >= 0:
+        return tol, max_iter
     return check_number(tol, "tol", minimum=0.0), check_integer(max_iter, "max_iter", 0)
 
 

@@ -280,8 +280,9 @@ def _optimal_pdf(model, count, version, bins, max_points):
     For a log-concave model the Lloyd-Max quantizer is the unique optimum
     (Fleischer 1964), so it is the answer and nothing else is tried.
     Otherwise (two-sided gamma, generalised Gaussian with shape < 1) the
-    symmetric Lloyd-Max design can be a saddle: e.g. for the gamma PDF an
-    asymmetric design with a level near the peak is better at every even L.
+    symmetric Lloyd-Max design need not be the optimum: e.g. for the gamma
+    PDF an asymmetric design with a level near the peak is better at every
+    even L we tried.
     The candidates, each polished by Lloyd-Max on the PDF itself, are: the
     symmetric design; an asymmetric start (the L-1 level design plus one
     level beyond its top); and, up to ``MAX_DP_LEVELS`` levels, the global

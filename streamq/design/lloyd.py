@@ -199,7 +199,9 @@ def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPre
     if not math.isfinite(ref):
         ref = 0.5 * (float(c[0]) + float(c[-1]))
     cs = c - ref
-    wn = w * (1.0 / total)
+    inv = 1.0 / total
+    # a subnormal total overflows 1/total: divide instead (never a NaN)
+    wn = w * inv if inv < math.inf else w / total
     p01 = np.empty((n + 1, 2))
     p01[0] = 0.0
     np.cumsum(wn, out=p01[1:, 0])

@@ -158,7 +158,7 @@ def design_files(tmp_path):
     (["--pdf", "gaussian", "--levels", "8", "--method", "ecsq"], ["--method ecsq needs --entropy"]),
     (["--pdf", "gaussian", "--levels", "8", "--entropy", "2"], ["--entropy only applies"]),
     (["--pdf", "gaussian", "--levels", "8", "--method", "ecsq", "--entropy", "nan"],
-     ["entropy", "positive", "nan"]),
+     ["entropy", "finite", "nan"]),
     (["--pdf", "gaussian", "--levels", "8", "--method", "ecsq", "--entropy", "-1"],
      ["entropy", "positive", "-1"]),
     (["--pdf", "gaussian", "--levels", "8", "--export", "DIR/"], ["--export", "file name prefix"]),

@@ -187,6 +187,36 @@ def test_block_size_invariance_every_mode(tmp_path, mode):
     assert all(i == indices[0] for i in indices[1:])
 
 
+def test_adaptive_ecsq_meets_its_entropy_target_like_a_cold_start(tmp_path):
+    """Warm starts must not collapse an entropy-constrained design: the first
+    adaptive design on the drift scene's quiet opening must not start from the
+    (far wider) model codebook, and cells an ECSQ design dropped must come back."""
+    scene = 'use = "test-signal"\nscene = "drift"\nseconds = 6'
+    enc = 'pdf = "stats"\nmethod = "ecsq"\nbits = 4\nentropy = 3\nadapt = "trailing"'
+    warm = run_toml(chain(scene, enc), tmp_path / "warm")["meters"]["noise"]
+    cold = run_toml(chain(scene, enc + "\nwarm_start = false"), tmp_path / "cold")["meters"]["noise"]
+    # (on shorter scenes the parts change faster than a trailing design follows, and
+    # warm and cold starts alike overshoot the target)
+    assert abs(warm["entropy_bits"] - 3.0) < 0.15, warm["entropy_bits"]
+    assert warm["snr_db"] > cold["snr_db"] - 1.0, (warm["snr_db"], cold["snr_db"])
+
+
+def test_warm_start_refuses_collapsed_or_too_wide_codebooks():
+    from streamq.design import Codebook
+    from streamq.nodes.coding import pad_levels, warm_start
+    centers = np.linspace(-1, 1, 201)
+    counts = np.where(np.abs(centers) <= 0.5, 1.0, 0.0)
+    fits = Codebook(levels=np.linspace(-0.4, 0.4, 8))
+    assert warm_start(fits, centers, counts, 8) is fits
+    assert warm_start(None, centers, counts, 8) is None
+    # two distinct levels padded to eight: collapsed
+    collapsed = pad_levels(Codebook(levels=[-0.1, 0.1]), 8)
+    assert len(collapsed.levels) == 8
+    assert warm_start(collapsed, centers, counts, 8) is None
+    # outer levels beyond the window's occupied range: too wide
+    assert warm_start(Codebook(levels=np.linspace(-0.9, 0.9, 8)), centers, counts, 8) is None
+
+
 def _announcements(path):
     from streamq.engine.indexio import IndexReader
     reader = IndexReader(path)

@@ -64,6 +64,47 @@ def histogram_codebook(method: str, n_levels: int, centers: np.ndarray, counts: 
     return pad_levels(cb, n_levels)
 
 
+def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int):
+    """The codebook in force as the starting point of a design on a window, or
+    None for the method's cold start.
+
+    Levels are counted without padded duplicates (see :func:`pad_levels`) or
+    levels merged by the side-information grid. The codebook is used only if
+    it has ``n_levels`` distinct levels and its outermost levels lie inside
+    the window's occupied range (bin centers). A codebook that has collapsed
+    (an entropy-constrained design drops the cells that empty out, and a
+    dropped cell never comes back from a warm start) or that is far wider
+    than the window (the first model codebook on a quiet window) would leave
+    cells empty and lose them for good; the cold start spreads all the levels
+    over the data again.
+
+    Parameters
+    ----------
+    init : Codebook or None
+        The newest design of the channel.
+    centers, counts : numpy.ndarray
+        The window's histogram.
+    n_levels : int
+        The level count asked for.
+
+    Returns
+    -------
+    Codebook or None
+    """
+    if init is None:
+        return None
+    lv = np.asarray(init.levels, dtype=np.float64)
+    distinct = lv[np.concatenate(([True], lv[1:] > lv[:-1]))]
+    if distinct.size < n_levels:
+        return None
+    occupied = np.flatnonzero(counts > 0)
+    if occupied.size == 0:
+        return None
+    if distinct[0] < centers[occupied[0]] or distinct[-1] > centers[occupied[-1]]:
+        return None
+    return init
+
+
 def pad_levels(cb, n_levels: int):
     """Keep a stream's level count fixed when a design (e.g. ECSQ) drops cells:
     the top level is repeated behind thresholds a hair above the last one, so

@@ -55,6 +55,7 @@ def design_job(snap, init, recipe: dict):
     elif snap.counts.sum() <= 0:
         return None
     else:
+        init = coding.warm_start(init, snap.centers, snap.counts, L)
         cb = coding.histogram_codebook(recipe["method"], L, snap.centers, snap.counts, init, opts)
     return coding.finish_levels(cb, recipe["grid_bits"], recipe["standard"])
 
@@ -106,7 +107,9 @@ class EncoderConfig(NodeConfig):
         Duration(0), description="trailing: a design from the window ending at t applies from "
                                  "t + apply_after (gives a live worker time to finish it, so a "
                                  "live run and an offline replay apply it at the same sample)")
-    warm_start: bool = Field(True, description="start each design from the codebook in force")
+    warm_start: bool = Field(True, description="start each design from the newest codebook (a "
+                                               "cold start when that one has lost levels or is "
+                                               "wider than the window's data)")
     model: Literal[coding.PARAMETRIC] = Field(
         "gaussian", description="PDF for fixed designs, the first adaptive codebook and backward fits")
     scale: float = Field(0.1, gt=0, le=10, description="standard deviation of `model` (full scale = 1)")

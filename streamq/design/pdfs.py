@@ -229,8 +229,13 @@ class _GeneralizedGaussian(PdfModel):
     def __init__(self, mean, std, shape):
         super().__init__(mean, std, shape)
         beta = self._beta = float(shape)
-        self._alpha = math.sqrt(math.gamma(1.0 / beta) / math.gamma(3.0 / beta))
-        self._norm = beta / (2.0 * self._alpha * math.gamma(1.0 / beta))
+        # log-gamma forms: Gamma(1/beta) overflows a float for beta below ~0.006
+        lg1 = math.lgamma(1.0 / beta)
+        self._log_alpha = 0.5 * (lg1 - math.lgamma(3.0 / beta))
+        self._alpha = math.exp(self._log_alpha)
+        if not self._alpha > 0.0:   # beta below about 0.006: the scale underflows a float
+            raise StreamqError(f"PDF {self.name}: shape {beta!r} is too small to compute with")
+        self._norm = math.exp(math.log(0.5 * beta) - self._log_alpha - lg1)
 
     @property
     def log_concave(self) -> bool:
@@ -243,11 +248,11 @@ class _GeneralizedGaussian(PdfModel):
     def _tails0(self, z):
         beta, alpha = self._beta, self._alpha
         w = (z / alpha) ** beta
-        g1 = math.gamma(1.0 / beta)
+        lg1 = math.lgamma(1.0 / beta)
         out = []
         for k in range(3):
             p = (k + 1.0) / beta
-            coef = 0.5 * alpha**k * math.gamma(p) / g1
+            coef = 0.5 * math.exp(k * self._log_alpha + math.lgamma(p) - lg1)
             out.append(coef * sc.gammaincc(p, w))
         return out
 
@@ -319,7 +324,9 @@ class _Gamma(PdfModel):
         super().__init__(mean, std, shape)
         s = self._s = float(shape)
         self._theta = 1.0 / math.sqrt(s * (s + 1.0))
-        self._norm = 1.0 / (2.0 * math.gamma(s) * self._theta**s)
+        # 1 / (2 Gamma(s) theta**s) in log form: Gamma(s) overflows and theta**s
+        # underflows a float for large shapes
+        self._log_norm = -math.log(2.0) - math.lgamma(s) - s * math.log(self._theta)
 
     @property
     def log_concave(self) -> bool:
@@ -327,15 +334,16 @@ class _Gamma(PdfModel):
         return self._s == 1.0
 
     def _pdf0(self, z):
-        with np.errstate(divide="ignore"):
-            return self._norm * z ** (self._s - 1.0) * np.exp(-z / self._theta)
+        # xlogy: 0 * log(0) = 0 at the centre when s = 1 (the Laplacian case)
+        with np.errstate(divide="ignore", over="ignore"):
+            return np.exp(self._log_norm + sc.xlogy(self._s - 1.0, z) - z / self._theta)
 
     def _tails0(self, z):
         s, th = self._s, self._theta
         w = z / th
         out = []
         for k in range(3):
-            coef = 0.5 * th**k * math.gamma(s + k) / math.gamma(s)
+            coef = 0.5 * th**k * math.exp(math.lgamma(s + k) - math.lgamma(s))
             out.append(coef * sc.gammaincc(s + k, w))
         return out
 
@@ -347,7 +355,8 @@ class _Gamma(PdfModel):
 
     def _cube_root_integral0(self):
         s2 = (self._s + 2.0) / 3.0
-        return self._norm ** (1.0 / 3.0) * 2.0 * math.gamma(s2) * (3.0 * self._theta) ** s2
+        return math.exp(self._log_norm / 3.0 + math.log(2.0) + math.lgamma(s2)
+                        + s2 * math.log(3.0 * self._theta))
 
 
 class _Uniform(PdfModel):

@@ -30,6 +30,7 @@ from streamq.engine.blocks import CodebookUpdate, IndexBlock, Packet, StreamSpec
 from streamq.engine.delay import DelayLine
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
+from streamq.errors import StreamqError
 from streamq.nodes import coding
 from streamq.nodes.estimator import js_drift
 
@@ -250,6 +251,8 @@ class Encoder(Node):
             # designs start as soon as the estimator's snapshot is ready
             specs["pdf"].extra["subscribe"](self)
         self.worker_errors: list[str] = []
+        self.design_errors = 0          # offline designs that failed (codebook kept)
+        self.design_error = ""
         self.recipe = {"method": c.method, "levels": self.L, "design_from": c.design_from,
                        "model": c.model, "opts": self.opts, "grid_bits": c.grid_bits,
                        "standard": self.standard, "trigger": c.trigger,
@@ -352,8 +355,19 @@ class Encoder(Node):
         return go
 
     def _design(self, snap):
+        """The design for one snapshot (offline), or None. A design that fails
+        (a window the method cannot design on) keeps the codebook in force; the
+        failure is counted and the last one named in the report, and the next
+        snapshot is tried as usual. (Live runs: a failing design fails its
+        worker job, counted in ``worker_errors``.)"""
         init = self.designed[snap.channel] if self.config.warm_start else None
-        return design_job(snap, init, self.recipe)
+        try:
+            return design_job(snap, init, self.recipe)
+        except (StreamqError, ArithmeticError) as exc:
+            self.design_errors += 1
+            self.design_error = (f"design on the window ending at sample {snap.at_sample}, "
+                                 f"channel {snap.channel} failed: {exc}")
+            return None
 
     def _designed(self, ch: int, snap, cb) -> None:
         """Book-keeping of a finished design (the snapshot it came from)."""
@@ -569,6 +583,8 @@ class Encoder(Node):
     def report(self):
         extra = {"worker_errors": len(self.worker_errors),
                  "worker_error": self.worker_errors[-1]} if self.worker_errors else {}
+        if self.design_errors:
+            extra.update(design_errors=self.design_errors, design_error=self.design_error)
         if self.live and self.config.adapt == "trailing":
             extra["late_codebooks"] = self.late
         return {**extra, "codebook_updates": self.updates, "side_info_bits": self.side_bits,
@@ -580,6 +596,7 @@ class Encoder(Node):
               "ref": list(self.ref), "last_design": list(self.last_design),
               "updates": self.updates, "side_bits": self.side_bits,
               "designed": list(self.designed), "scheduled": list(self.scheduled),
+              "design_errors": (self.design_errors, self.design_error),
               "delay_line": self.delay_line.get_state()}
         if self.backward is not None:
             st["backward"] = self.backward.get_state()
@@ -591,6 +608,7 @@ class Encoder(Node):
         self.th_rows = None
         self.ref, self.last_design = list(st["ref"]), list(st["last_design"])
         self.designed, self.scheduled = list(st["designed"]), list(st["scheduled"])
+        self.design_errors, self.design_error = st.get("design_errors", (0, ""))
         self.delay_line.set_state(st["delay_line"])
         if self.backward is not None:
             self.backward.set_state(st["backward"])

@@ -23,6 +23,12 @@ from streamq.engine.registry import register
 
 FITS = ("gaussian", "laplacian", "gamma", "generalized-gaussian")
 CLIP_LEVEL = 1.0 - 2.0 ** -15  # at or beyond: counted as clipped (16-bit full scale)
+#: Fitted shapes are kept in these ranges. A window with (almost) no spread, such
+#: as silence or a DC offset, drives the maximum-likelihood shape of a two-sided
+#: gamma towards 1e4, where the model cannot be designed on; beyond about 8 the
+#: two-sided gamma is a pair of narrow bumps away from zero, which no audio
+#: amplitude distribution resembles (speech fits are well below 1).
+SHAPE_RANGE = {"gamma": (0.05, 8.0), "generalized-gaussian": (0.2, 8.0)}
 
 
 # -- window math (also used by the encoder and the backward adapter) ----------
@@ -102,7 +108,9 @@ def fit_model(name: str, centers: np.ndarray, counts: np.ndarray) -> dict[str, f
     histogram's mean, computed on the (weighted) histogram.
 
     Returns a dict with ``model``, ``mean``, ``std`` and, for gamma and
-    generalized-gaussian, ``shape``.
+    generalized-gaussian, ``shape`` (kept inside :data:`SHAPE_RANGE`, the
+    scale then refitted for that shape). A window without spread (silence,
+    DC) gives a standard deviation of zero.
 
     References
     ----------
@@ -128,12 +136,17 @@ def fit_model(name: str, centers: np.ndarray, counts: np.ndarray) -> dict[str, f
             alpha = (beta * m) ** (1.0 / beta)
             return -(np.log(beta / (2.0 * alpha)) - special.gammaln(1.0 / beta) - 1.0 / beta)
 
-        res = optimize.minimize_scalar(nll, bounds=(0.2, 8.0), method="bounded",
-                                       options={"xatol": 1e-4})
-        beta = float(res.x)
+        lo, hi = SHAPE_RANGE[name]
+        # a window without spread makes the likelihood degenerate (log 0): quietly
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore", under="ignore"):
+            res = optimize.minimize_scalar(nll, bounds=(lo, hi), method="bounded",
+                                           options={"xatol": 1e-4})
+            beta = min(max(float(res.x), lo), hi)
+            alpha = (beta * np.dot(ww, np.exp(beta * logd))) ** (1.0 / beta)
+            std = float(alpha * np.exp(0.5 * (special.gammaln(3.0 / beta)
+                                              - special.gammaln(1.0 / beta))))
         out["shape"] = beta
-        alpha = (beta * np.dot(ww, np.exp(beta * logd))) ** (1.0 / beta)
-        out["std"] = float(alpha * np.sqrt(special.gamma(3.0 / beta) / special.gamma(1.0 / beta)))
+        out["std"] = std if np.isfinite(std) else 0.0
     elif name == "gamma":
         occupied = w > 0
         dd, ww = np.maximum(d[occupied], 1e-300), w[occupied]
@@ -145,7 +158,9 @@ def fit_model(name: str, centers: np.ndarray, counts: np.ndarray) -> dict[str, f
         # target into what the bracket can reach (a constant window has s = 0)
         s = min(max(np.log(mabs) - mlog, 5.1e-5), 9.0e3) if mabs > 0 else 1.0
         a = optimize.brentq(lambda a: np.log(a) - special.digamma(a) - s, 1e-4, 1e4)
-        theta = mabs / a
+        lo, hi = SHAPE_RANGE[name]
+        a = min(max(a, lo), hi)
+        theta = mabs / a   # the ML scale for that shape
         out["shape"] = float(a)
         out["std"] = float(theta * np.sqrt(a * (a + 1.0)))
     return out

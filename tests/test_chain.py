@@ -292,6 +292,28 @@ def test_backward_mode_no_side_info_and_decoder_matches_encoder_shadow(tmp_path)
     np.testing.assert_array_equal(np.concatenate(rebuilt), dec[:, 0])
 
 
+@pytest.mark.parametrize("method", ["lloyd-max", "uniform"])
+def test_backward_mode_follows_a_dc_offset(tmp_path, method):
+    """DC 0.3 plus a little noise lies beyond the first codebook (Gaussian, 0.1):
+    the decoded past sat at the top level with variance zero and the codebook
+    shrank onto it for the whole file (about 11 dB). The overload rule grows the
+    scale when nearly a whole hop decodes to one outer level."""
+    rng = np.random.default_rng(5)
+    x = 0.3 + 1e-3 * rng.standard_normal(3 * RATE)
+    sf.write(tmp_path / "dc.wav", x, RATE, subtype="DOUBLE")
+    feed = f'use = "file-source"\npath = "{tmp_path / "dc.wav"}"'
+    enc = f'method = "{method}"\nbits = 3\nadapt = "backward"'
+    # the decoder checks every codebook it derives against the encoder's shadow
+    # announcements and stops on the first difference (bit-exact mirror)
+    rep = run_toml(chain(feed, enc), tmp_path / "o")["meters"]["noise"]
+    assert rep["side_info_bits"] == 0
+    ref, _ = sf.read(tmp_path / "o" / "reference.wav")
+    dec, _ = sf.read(tmp_path / "o" / "decoded.wav")
+    after = slice(RATE, None)   # from one second on
+    snr = 10 * np.log10(np.sum(ref[after] ** 2) / np.sum((dec[after] - ref[after]) ** 2))
+    assert snr > 30, snr
+
+
 def test_index_file_decodes_bit_identical_in_another_graph(tmp_path):
     for mode in ("trailing", "backward", "lookahead"):
         out = tmp_path / mode

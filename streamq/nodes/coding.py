@@ -163,8 +163,26 @@ class BackwardAdapter:
 
     The decoded signal of a Lloyd-Max quantizer has the input's mean and
     variance ``sigma**2 - D`` (``D`` = its MSE), so the scale estimate is
-    ``sqrt(var(decoded) / (1 - D_unit))``.
+    ``sqrt(var(decoded) / (1 - D_unit))``. Two rules keep that estimate from
+    locking up when the decoded past says little about the input:
+
+    * overload: when more than ``OVER_SHARE`` of the hop just coded decoded
+      to the top level, or to the bottom one, the input most likely lies
+      beyond the codebook; the scale then grows to at least ``GROW`` times the
+      one in force (a DC offset beyond the first codebook otherwise decodes to
+      one level, of variance zero, and the codebook shrinks onto it for ever).
+      A zero-mean input that outgrows the codebook hits both outer levels and
+      needs no rule: the decoded variance grows by itself;
+    * floor: the scale is at least ``REL_FLOOR`` times the decoded window's
+      RMS (and at least 2**-20), so a constant input keeps a codebook wide
+      enough to follow small changes.
+
+    Both rules see only decoded samples, so the two ends stay in step.
     """
+
+    GROW = 4.0
+    OVER_SHARE = 0.9
+    REL_FLOOR = 2.0 ** -8
 
     def __init__(self, coding: dict[str, Any], channels: int):
         self.method = coding["method"]
@@ -175,21 +193,25 @@ class BackwardAdapter:
         self.shape = coding.get("shape")
         self.opts = dict(coding.get("options", {}))
         self.floor = 2.0 ** -20
-        _, _, self.d_unit = unit_design(self.method, self.L, self.model,
-                                        None if self.shape is None else round(float(self.shape), 2),
+        shape = None if self.shape is None else round(float(self.shape), 2)
+        _, _, self.d_unit = unit_design(self.method, self.L, self.model, shape,
                                         tuple(sorted(_opts(self.method, self.opts).items())))
         self.d_unit = min(max(self.d_unit, 0.0), 0.99)
         self.hist = np.zeros((self.W, channels))
         self.seen = 0
-        init = model_codebook(self.method, self.L, self.model, 0.0, float(coding["scale"]),
-                              self.shape, self.opts)
+        scale = float(coding["scale"])
+        init = model_codebook(self.method, self.L, self.model, 0.0, scale, self.shape, self.opts)
         self.current = [init] * channels
+        self.std = [scale] * channels                    # scale of the codebook in force
+        self.hits = np.zeros((channels, 3), np.int64)    # this hop: [bottom, top, samples]
 
     def _push(self, ch: int, dec: np.ndarray) -> None:
         n = dec.shape[0]
         h = self.hist[:, ch]
         if n == 0:
             return
+        lv = self.current[ch].levels
+        self.hits[ch] += (np.count_nonzero(dec == lv[0]), np.count_nonzero(dec == lv[-1]), n)
         if n >= self.W:
             h[:] = dec[-self.W:]
         else:
@@ -201,7 +223,13 @@ class BackwardAdapter:
         win = self.hist[self.W - have:, ch]
         mean = float(win.mean())
         var = float(np.mean((win - mean) ** 2))
-        std = max(np.sqrt(var / (1.0 - self.d_unit)), self.floor)
+        std = max(np.sqrt(var / (1.0 - self.d_unit)), self.floor,
+                  self.REL_FLOOR * np.sqrt(var + mean * mean))
+        bottom, top, n = (int(v) for v in self.hits[ch])
+        if max(bottom, top) > self.OVER_SHARE * n:
+            std = max(std, self.GROW * self.std[ch])
+        self.hits[ch] = 0
+        self.std[ch] = std
         return model_codebook(self.method, self.L, self.model, mean, std, self.shape, self.opts)
 
     def run(self, ch: int, start: int, n: int, segment) -> list[tuple[int, Any]]:
@@ -225,11 +253,14 @@ class BackwardAdapter:
         return out
 
     def get_state(self):
-        return {"hist": self.hist.copy(), "current": list(self.current)}
+        return {"hist": self.hist.copy(), "current": list(self.current), "std": list(self.std),
+                "hits": self.hits.copy()}
 
     def set_state(self, state):
         self.hist = state["hist"].copy()
         self.current = list(state["current"])
+        self.std = list(state["std"])
+        self.hits = state["hits"].copy()
 
 
 def check_method(method: str, adapt: str) -> str | None:

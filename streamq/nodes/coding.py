@@ -171,7 +171,10 @@ class BackwardAdapter:
       beyond the codebook; the scale then grows to at least ``GROW`` times the
       one in force (a DC offset beyond the first codebook otherwise decodes to
       one level, of variance zero, and the codebook shrinks onto it for ever).
-      A zero-mean input that outgrows the codebook hits both outer levels and
+      With two levels both are outer, a hop on one side only says the input
+      is above (below) the middle, and the rule is off (a 1-bit backward
+      quantizer does not follow a DC offset beyond its first codebook). A
+      zero-mean input that outgrows the codebook hits both outer levels and
       needs no rule: the decoded variance grows by itself;
     * floor: the scale is at least ``REL_FLOOR`` times the decoded window's
       RMS (and at least 2**-20), so a constant input keeps a codebook wide
@@ -226,7 +229,7 @@ class BackwardAdapter:
         std = max(np.sqrt(var / (1.0 - self.d_unit)), self.floor,
                   self.REL_FLOOR * np.sqrt(var + mean * mean))
         bottom, top, n = (int(v) for v in self.hits[ch])
-        if max(bottom, top) > self.OVER_SHARE * n:
+        if self.L > 2 and max(bottom, top) > self.OVER_SHARE * n:
             std = max(std, self.GROW * self.std[ch])
         self.hits[ch] = 0
         self.std[ch] = std

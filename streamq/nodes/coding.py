@@ -161,9 +161,12 @@ class BackwardAdapter:
     runs it on its shadow decoder's output, the decoder on its own output, so
     both reach the same codebooks with no side information.
 
-    The decoded signal of a Lloyd-Max quantizer has the input's mean and
-    variance ``sigma**2 - D`` (``D`` = its MSE), so the scale estimate is
-    ``sqrt(var(decoded) / (1 - D_unit))``. Two rules keep that estimate from
+    A quantizer designed for the model at scale ``sigma`` decodes the model's
+    samples to a signal of variance ``sigma**2 * V``, ``V`` the decoded
+    variance of the unit design on the unit model (``1 - D`` for Lloyd-Max,
+    ``D`` its MSE, by the centroid condition; above 1 for a uniform
+    quantizer's wide outer levels), so the scale estimate is
+    ``sqrt(var(decoded) / V)``. Two rules keep that estimate from
     locking up when the decoded past says little about the input:
 
     * overload: when more than ``OVER_SHARE`` of the hop just coded decoded
@@ -173,7 +176,9 @@ class BackwardAdapter:
       one level, of variance zero, and the codebook shrinks onto it for ever).
       With two levels both are outer, a hop on one side only says the input
       is above (below) the middle, and the rule is off (a 1-bit backward
-      quantizer does not follow a DC offset beyond its first codebook). A
+      quantizer does not follow a DC offset beyond its first codebook, and
+      cannot learn a scale at all: every input decodes to the two levels,
+      whose variance is the codebook's own). A
       zero-mean input that outgrows the codebook hits both outer levels and
       needs no rule: the decoded variance grows by itself;
     * floor: the scale is at least ``REL_FLOOR`` times the decoded window's
@@ -197,9 +202,13 @@ class BackwardAdapter:
         self.opts = dict(coding.get("options", {}))
         self.floor = 2.0 ** -20
         shape = None if self.shape is None else round(float(self.shape), 2)
-        _, _, self.d_unit = unit_design(self.method, self.L, self.model, shape,
-                                        tuple(sorted(_opts(self.method, self.opts).items())))
-        self.d_unit = min(max(self.d_unit, 0.0), 0.99)
+        th, lv, _ = unit_design(self.method, self.L, self.model, shape,
+                                tuple(sorted(_opts(self.method, self.opts).items())))
+        unit = _design().pdf_model(self.model, 0.0, 1.0, shape)
+        p, _, _ = unit.partial_moments(np.concatenate(([-np.inf], th)),
+                                       np.concatenate((th, [np.inf])))
+        v = float(np.dot(p, lv * lv) - np.dot(p, lv) ** 2)
+        self.v_unit = min(max(v, 0.01), 100.0)
         self.hist = np.zeros((self.W, channels))
         self.seen = 0
         scale = float(coding["scale"])
@@ -226,7 +235,7 @@ class BackwardAdapter:
         win = self.hist[self.W - have:, ch]
         mean = float(win.mean())
         var = float(np.mean((win - mean) ** 2))
-        std = max(np.sqrt(var / (1.0 - self.d_unit)), self.floor,
+        std = max(np.sqrt(var / self.v_unit), self.floor,
                   self.REL_FLOOR * np.sqrt(var + mean * mean))
         bottom, top, n = (int(v) for v in self.hits[ch])
         if self.L > 2 and max(bottom, top) > self.OVER_SHARE * n:

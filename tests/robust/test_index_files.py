@@ -124,13 +124,18 @@ def test_truncated(tmp_path, capsys, cut):
     assert res.code == 2 or cut >= len(SEED) - 36  # only a lost end record may still replay
 
 
-def test_truncated_after_some_chunks_keeps_what_was_decoded(tmp_path, capsys):
-    """A file cut inside its last chunk: the end record is missing, the reader
-    recovers the records before the cut (a recording stopped by a crash), and
-    the replay decodes them."""
+def test_truncated_inside_the_last_chunk_is_refused_at_open(tmp_path, capsys):
+    """A file cut inside its last chunk has no end record. The reader has no
+    salvage mode: it checks the end record when it opens the file, so the chunks
+    before the cut are not replayed either; the run stops before decoding with
+    one line that says the file is truncated (exit 2)."""
     last_chunk = [r for r in RECS if r[1] == 2][-1]
     g, res = replay(capsys, tmp_path, SEED[:last_chunk[0] + 10])
     check_replay(res, g, tmp_path)
+    assert res.code == 2, res
+    (line,) = res.lines
+    assert "truncated file" in line and "no end record" in line, line
+    assert not (tmp_path / "o" / "decoded.wav").exists()
 
 
 @pytest.mark.parametrize("offset", [8, 12, 20, 30, 40, 44, 50])

@@ -182,3 +182,58 @@ def test_backward_scale_estimate_settles_on_the_input_scale(method, levels):
     # the estimate must stay where it started (it ran away before), not learn 0.05
     expect = 0.1 if levels == 2 else 0.05
     assert ad.std[0] == pytest.approx(expect, rel=0.03)
+
+
+# -- the estimator's windows CSV ---------------------------------------------------------
+
+def _read_csv(path):
+    import csv
+    with open(path, newline="") as f:
+        return list(csv.DictReader(f))
+
+
+@pytest.mark.parametrize("fit", ["none", "gamma"])
+def test_estimator_writes_one_row_per_hop_with_numpy_moments(tmp_path, fit):
+    W, H = 400, 80   # 50 ms and 10 ms at 8 kHz
+    text = f"""
+[graph]
+name = "windows"
+sample_rate = {RATE}
+[nodes.feed]
+use = "test-signal"
+scene = "drift"
+seconds = 1.23
+channels = 2
+[nodes.stats]
+use = "pdf-estimator"
+input = "feed"
+window = "{W}"
+hop = "{H}"
+fit = "{fit}"
+[nodes.ref]
+use = "file-sink"
+input = "feed"
+path = "reference.wav"
+subtype = "DOUBLE"
+"""
+    rep = run_toml(text, tmp_path, block=97)
+    assert rep["nodes"]["stats"]["windows_csv"] == "stats-windows.csv"
+    rows = _read_csv(tmp_path / "stats-windows.csv")
+    x, _ = sf.read(tmp_path / "reference.wav", always_2d=True)
+    hops = list(range(H, x.shape[0] + 1, H))
+    assert [(int(r["at_sample"]), int(r["channel"])) for r in rows] == \
+        [(t, ch) for t in hops for ch in range(2)]
+    for r in rows:
+        t, ch = int(r["at_sample"]), int(r["channel"])
+        win = x[max(0, t - W):t, ch]
+        assert int(r["samples"]) == win.size
+        # the CSV keeps 6 significant digits
+        assert float(r["mean"]) == pytest.approx(np.mean(win), rel=1e-5, abs=1e-12)
+        assert float(r["variance"]) == pytest.approx(np.var(win), rel=1e-5)
+        assert float(r["peak"]) == pytest.approx(np.max(np.abs(win)), rel=1e-5)
+        assert int(r["clipped"]) == 0
+    assert rows[0]["drift"] == "" and all(r["drift"] for r in rows[2:])
+    if fit == "gamma":
+        assert all(0.05 <= float(r["model_shape"]) <= 8 for r in rows)
+    else:
+        assert "model_std" not in rows[0]

@@ -179,7 +179,7 @@ def test_block_size_invariance_every_mode(tmp_path, mode):
         # float WAVs carry a time stamp in their PEAK chunk: compare the samples
         decoded.append(sf.read(out / "decoded.wav")[0].tobytes())
         indices.append((out / "indices.sqi").read_bytes())
-        for name in ("noise-series.csv", "noise-spectrum.csv"):
+        for name in ("noise-series.csv", "noise-spectrum.csv", "stats-windows.csv"):
             p = out / name
             reports[-1] += p.read_text() if p.exists() else ""
     assert all(r == reports[0] for r in reports[1:])

@@ -101,8 +101,9 @@ class PdfSnapshot:
     ``centers``/``counts`` is the histogram (counts may be fractional when
     forgetting is on); ``model`` holds a fitted parametric PDF, if any;
     ``stats`` holds mean, variance, kurtosis, crest factor and clip count;
-    ``drift`` is the divergence against the snapshot the codebook in force
-    was designed on (None when nothing to compare with).
+    ``drift`` is the Jensen-Shannon divergence (bits) against the channel's
+    previous snapshot, hop to hop (None for the first); an encoder measures
+    the divergence from the snapshot its codebook was designed on itself.
     """
 
     at_sample: int

@@ -6,6 +6,13 @@ Windows and hops are counted in samples from the start of the stream: a
 snapshot is due at every ``t = k * hop`` (k >= 1) and covers
 ``[max(0, t - window), t)``. It travels in the packet that covers sample
 ``t`` (rule 1 of DESIGN.md: the result is the same whatever the block size).
+
+Each snapshot's statistics are also written to ``<node id>-windows.csv`` in
+the run's output folder (one row per hop and channel, see WINDOW_COLUMNS).
+Its ``drift`` is hop to hop: the Jensen-Shannon divergence between this
+window and the previous one. The divergence from the window a codebook was
+designed on belongs to each encoder (several may share one estimator); the
+encoder computes it for its drift trigger and reports it.
 """
 
 from __future__ import annotations
@@ -20,6 +27,7 @@ from scipy import optimize, special
 from streamq.engine.blocks import Packet, PdfSnapshot, StreamSpec
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
+from streamq.nodes.meter import Series, write_series_csv
 
 FITS = ("gaussian", "laplacian", "gamma", "generalized-gaussian")
 CLIP_LEVEL = 1.0 - 2.0 ** -15  # at or beyond: counted as clipped (16-bit full scale)
@@ -29,6 +37,10 @@ CLIP_LEVEL = 1.0 - 2.0 ** -15  # at or beyond: counted as clipped (16-bit full s
 #: two-sided gamma is a pair of narrow bumps away from zero, which no audio
 #: amplitude distribution resembles (speech fits are well below 1).
 SHAPE_RANGE = {"gamma": (0.05, 8.0), "generalized-gaussian": (0.2, 8.0)}
+#: Columns of ``<node id>-windows.csv``; a fit adds model_mean, model_std and,
+#: for gamma and generalized-gaussian, model_shape.
+WINDOW_COLUMNS = ("at_sample", "channel", "samples", "mean", "variance", "kurtosis", "crest_db",
+                  "peak", "clipped", "drift")
 
 
 # -- window math (also used by the encoder and the backward adapter) ----------
@@ -270,6 +282,13 @@ class PdfEstimator(Node):
         self.worker_errors = 0
         self.worker_lost = False   # the worker process died: no more offloads this run
         self.skipped = 0
+        model_cols = ()
+        if self.config.fit != "none":
+            model_cols = ("model_mean", "model_std") + (
+                ("model_shape",) if self.config.fit in SHAPE_RANGE else ())
+        self.rows = Series(WINDOW_COLUMNS + model_cols,
+                           {"at_sample", "channel", "samples", "clipped"})
+        self.out_dir = ctx.out_dir
         return StreamSpec("signal", rate, self.C, spec.latency, spec.int_bits, spec.frames,
                           {**spec.extra, "subscribe": self.subscribe,
                            "estimator": {"window": self.W, "hop": self.H,
@@ -324,6 +343,12 @@ class PdfEstimator(Node):
     def _took(self, snaps: list[PdfSnapshot]) -> None:
         for snap in snaps:
             self.last[snap.channel] = snap
+            row = {"at_sample": snap.at_sample, "channel": snap.channel, **snap.stats,
+                   "drift": snap.drift}
+            if snap.model is not None:
+                row.update(model_mean=snap.model["mean"], model_std=snap.model["std"],
+                           model_shape=snap.model.get("shape"))
+            self.rows.append(row)
         self.snapshots += 1
 
     def step(self, frames, inputs) -> Packet:
@@ -387,8 +412,20 @@ class PdfEstimator(Node):
         for hook in self.listeners:
             hook.failed(exc)
 
+    def close(self, complete: bool) -> None:
+        """Write ``<node id>-windows.csv`` (if any samples came in)."""
+        if not (complete or self.written):
+            return
+        try:
+            write_series_csv(self.out_dir / f"{self.id}-windows.csv", self.rows)
+        except OSError as exc:
+            path = self.out_dir / f"{self.id}-windows.csv"
+            raise self.fail(None, f"{path}: cannot write ({exc.strerror or exc}); nothing "
+                                  f"was left under that name") from None
+
     def report(self):
         return {"snapshots": self.snapshots, "window_samples": self.W, "hop_samples": self.H,
+                "windows_csv": f"{self.id}-windows.csv",
                 "worker_errors": self.worker_errors, "hops_skipped": self.skipped,
                 **({"worker_error": self.worker_error} if self.worker_errors else {})}
 

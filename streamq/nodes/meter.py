@@ -43,25 +43,35 @@ _WHOLE = frozenset({"samples", "codebook_updates", "side_info_bits", "codebook_v
 
 
 class Series:
-    """The meter's time series (one row per series window), kept as columns of
-    floats: hours of audio make tens of thousands of rows, which as dicts of
-    Python numbers would cost a kilobyte each. None is kept as NaN."""
+    """A time series (one row per window or hop), kept as columns of floats:
+    hours of audio make tens of thousands of rows, which as dicts of Python
+    numbers would cost a kilobyte each. None is kept as NaN.
 
-    def __init__(self):
-        self.cols = {c: array("d") for c in SERIES_COLUMNS}
+    Parameters
+    ----------
+    columns : sequence of str
+        Column names, in CSV order (default: the meter's series).
+    whole : set of str
+        Columns that hold whole numbers (given back as int).
+    """
+
+    def __init__(self, columns=SERIES_COLUMNS, whole=_WHOLE):
+        self.columns = tuple(columns)
+        self.whole = frozenset(whole)
+        self.cols = {c: array("d") for c in self.columns}
         self.n = 0
 
     def append(self, row: dict) -> None:
-        for c in SERIES_COLUMNS:
-            v = row[c]
+        for c in self.columns:
+            v = row.get(c)
             self.cols[c].append(math.nan if v is None else v)
         self.n += 1      # last: a reader on another thread sees whole rows only
 
     def row(self, i: int) -> dict:
         out = {}
-        for c in SERIES_COLUMNS:
+        for c in self.columns:
             v = self.cols[c][i]
-            out[c] = None if v != v else (int(v) if c in _WHOLE else v)
+            out[c] = None if v != v else (int(v) if c in self.whole else v)
         return out
 
     def __len__(self) -> int:
@@ -69,6 +79,19 @@ class Series:
 
     def __iter__(self):
         return (self.row(i) for i in range(self.n))
+
+
+def write_series_csv(path, series: Series) -> None:
+    """Write a :class:`Series` as CSV: a header of its columns, then one line
+    per row; floats with 6 significant digits, whole numbers as integers,
+    None as an empty field. Written whole under a temporary name, then renamed
+    (:func:`streamq.engine.audiofile.replacing`); OSError is left to the caller."""
+    with replacing(path, newline="") as f:
+        w = csv.DictWriter(f, fieldnames=series.columns)
+        w.writeheader()
+        for row in series:
+            w.writerow({k: ("" if v is None else (f"{v:.6g}" if isinstance(v, float) else v))
+                        for k, v in row.items()})
 
 
 def _seq_sum(acc: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -441,12 +464,7 @@ class ErrorMeter(Node):
         self.csv_written = []
         path = self.out_dir / f"{self.id}-series.csv"
         try:
-            with replacing(path, newline="") as f:
-                w = csv.DictWriter(f, fieldnames=SERIES_COLUMNS)
-                w.writeheader()
-                for row in self.rows:
-                    w.writerow({k: ("" if v is None else (f"{v:.6g}" if isinstance(v, float) else v))
-                                for k, v in row.items()})
+            write_series_csv(path, self.rows)
             self.csv_written.append(path.name)
             if self.spec_frames:
                 path = self.out_dir / f"{self.id}-spectrum.csv"

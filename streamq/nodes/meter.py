@@ -34,7 +34,7 @@ class MeterConfig(NodeConfig):
     series: Duration = Field(Duration(100, "ms"), description="time-series row length "
                                                               "(rounded to whole frames)")
     spectrum_size: int = Field(2048, ge=64, le=65_536, description="Welch segment length, samples "
-                                                                   "(Hann window, no overlap)")
+                                                                   "(periodic Hann window, no overlap)")
 
 
 SERIES_COLUMNS = ("time_s", "samples", "snr_db", "segsnr_db", "signal_dbfs", "noise_dbfs",
@@ -160,7 +160,8 @@ class ErrorMeter(Node):
         self.win_events: dict[int, list[int]] = {}
         # spectra
         self.spec_in = FrameCollector(self.N, 2 * C)
-        self.spec_win = np.hanning(self.N + 2)[1:-1]
+        # periodic ("DFT-even") Hann window, as scipy.signal.welch's window="hann"
+        self.spec_win = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(self.N) / self.N)
         self.spec_acc = np.zeros((2, self.N // 2 + 1))
         self.spec_frames = 0
         # codebooks in force (output time) and what they cost

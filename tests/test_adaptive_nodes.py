@@ -237,3 +237,315 @@ subtype = "DOUBLE"
         assert all(0.05 <= float(r["model_shape"]) <= 8 for r in rows)
     else:
         assert "model_std" not in rows[0]
+
+
+# -- exponential forgetting ---------------------------------------------------------------
+
+@pytest.mark.parametrize("half_life", [1, 37.5, 400])
+def test_half_life_weights_equal_numpy_weighted_moments(half_life):
+    """With ``half_life`` h a sample of age a (0 = newest) weighs 2**(-a / h); the
+    window's moments are the weighted ones (numpy.average with those weights)."""
+    from streamq.nodes.estimator import snapshot_job
+    rng = np.random.default_rng(8)
+    win = np.stack([0.2 * rng.standard_normal(1000) + 0.05,
+                    rng.laplace(0.0, 0.1, 1000)], axis=1)
+    params = {"bins": 256, "span": "tracked", "half_life": half_life, "fit": "none"}
+    snaps = snapshot_job(5000, win, params, [None, None])
+    w = 0.5 ** (np.arange(999, -1, -1) / half_life)
+    for ch, snap in enumerate(snaps):
+        x = win[:, ch]
+        mean = np.average(x, weights=w)
+        var = np.average((x - mean) ** 2, weights=w)
+        kurt = np.average((x - mean) ** 4, weights=w) / var ** 2
+        assert snap.stats["mean"] == pytest.approx(mean, rel=1e-12, abs=1e-15)
+        assert snap.stats["variance"] == pytest.approx(var, rel=1e-12)
+        assert snap.stats["kurtosis"] == pytest.approx(kurt, rel=1e-10)
+        # the histogram carries the same weights: total and first moment
+        assert snap.counts.sum() == pytest.approx(w.sum(), rel=1e-12)
+        width = snap.centers[1] - snap.centers[0]
+        assert np.dot(snap.centers, snap.counts) / snap.counts.sum() == pytest.approx(
+            mean, abs=width / 2)
+
+
+# -- maximum-likelihood fits against scipy.stats ---------------------------------------------
+
+def test_fits_match_scipy_stats_maximum_likelihood():
+    """fit_model works on the window's histogram (1024 bins) with the location at
+    the histogram's mean; the references are scipy.stats' ``.fit`` (maximum
+    likelihood) on the samples themselves, with the location fixed at that mean
+    where fit_model fixes it (gennorm, gamma). Tolerances allow for the binning."""
+    import scipy.stats as st
+    from scipy import special
+    rng = np.random.default_rng(4)
+    n = 200_000
+
+    def fit(name, x):
+        c, w = window_histogram(x, 1024, "tracked")
+        return fit_model(name, c, w)
+
+    x = 0.3 + 0.1 * rng.standard_normal(n)
+    m = fit("gaussian", x)
+    loc, scale = st.norm.fit(x)                               # scipy.stats.norm.fit
+    assert m["mean"] == pytest.approx(loc, abs=1e-5)
+    assert m["std"] == pytest.approx(scale, rel=1e-4)
+
+    x = 0.3 + rng.laplace(0.0, 0.05, n)
+    m = fit("laplacian", x)
+    loc, b = st.laplace.fit(x)                                # scipy.stats.laplace.fit
+    # the ML location of a Laplacian is the median; fit_model keeps the mean
+    assert m["mean"] == pytest.approx(loc, abs=0.01 * b)   # (sampling: both ~ b / sqrt(n))
+    assert m["std"] == pytest.approx(b * np.sqrt(2.0), rel=1e-3)
+
+    for beta in (0.7, 1.5, 4.0):
+        x = 0.1 + st.gennorm.rvs(beta, scale=0.05, size=n, random_state=rng)
+        m = fit("generalized-gaussian", x)
+        b, _, scale = st.gennorm.fit(x, floc=m["mean"])       # scipy.stats.gennorm.fit
+        assert m["shape"] == pytest.approx(b, rel=0.01)
+        std = scale * np.sqrt(special.gamma(3 / b) / special.gamma(1 / b))
+        assert m["std"] == pytest.approx(std, rel=0.005)
+
+    for a in (0.5, 1.0, 2.0):
+        x = -0.05 + st.dgamma.rvs(a, scale=0.03, size=n, random_state=rng)
+        m = fit("gamma", x)
+        # two-sided gamma: |x - mean| ~ Gamma(a, theta)        scipy.stats.gamma.fit
+        aa, _, theta = st.gamma.fit(np.abs(x - m["mean"]), floc=0)
+        assert m["shape"] == pytest.approx(aa, rel=0.03)
+        assert m["std"] == pytest.approx(theta * np.sqrt(aa * (aa + 1)), rel=0.015)
+
+
+# -- the drift trigger and the minimum interval ---------------------------------------------
+
+def test_drift_trigger_and_minimum_interval(tmp_path):
+    """trigger = "drift": a design only when the Jensen-Shannon divergence between the
+    hop's window and the one the codebook in force was designed on passes the
+    threshold, and never sooner than min_interval after the last one. The rule is
+    replayed here on the estimator's own snapshots of the written reference."""
+    from streamq.engine.indexio import IndexReader
+    from streamq.nodes.estimator import js_drift, snapshot_job
+    W, H, interval, threshold = 400, 80, 240, 0.1   # 50 ms, 10 ms, 30 ms at 8 kHz
+    text = f"""
+[graph]
+name = "drift"
+sample_rate = {RATE}
+[nodes.feed]
+use = "test-signal"
+scene = "drift"
+seconds = 3
+[nodes.stats]
+use = "pdf-estimator"
+input = "feed"
+window = "{W}"
+hop = "{H}"
+[nodes.enc]
+use = "encoder"
+input = "feed"
+pdf = "stats"
+bits = 3
+adapt = "trailing"
+trigger = "drift"
+drift_threshold = {threshold}
+min_interval = "{interval}"
+[nodes.idx]
+use = "index-sink"
+input = "enc"
+path = "i.sqi"
+[nodes.ref]
+use = "file-sink"
+input = "feed"
+path = "reference.wav"
+subtype = "DOUBLE"
+"""
+    rep = run_toml(text, tmp_path)
+    with IndexReader(tmp_path / "i.sqi") as reader:
+        at = [u.at_sample for pkt in reader for u in pkt.events]
+    x, _ = sf.read(tmp_path / "reference.wav", always_2d=True)
+    params = {"bins": 1024, "span": "tracked", "half_life": None, "fit": "none"}
+    expect, ref, last = [0], None, None
+    held = {"interval": 0, "threshold": 0}
+    for t in range(H, x.shape[0], H):    # a design at the very end would never apply
+        snap = snapshot_job(t, x[max(0, t - W):t], params, [None])[0]
+        if last is not None and t - last < interval:
+            held["interval"] += 1
+            continue
+        if ref is None or js_drift(ref.centers, ref.counts, snap.centers, snap.counts) > threshold:
+            expect.append(t)
+            ref, last = snap, t
+        else:
+            held["threshold"] += 1
+    assert at == expect
+    assert np.all(np.diff(at[1:]) >= interval)
+    # both rules held designs back on this scene
+    assert held["interval"] > 20 and held["threshold"] > 20 and len(at) > 20, held
+    assert rep["nodes"]["enc"]["codebook_updates"] == len(at)
+
+
+# -- decoder errors that name the sample ---------------------------------------------------
+
+def _decoder(tmp_path, channels: int, levels: int):
+    from streamq.engine.blocks import StreamSpec
+    from streamq.engine.node import RunContext
+    from streamq.nodes.decoder import Decoder, DecoderConfig
+    dec = Decoder("dec", DecoderConfig(use="decoder", input="enc"))
+    dec.open({"input": StreamSpec("index", RATE, channels, extra={"n_levels": levels})},
+             RunContext(None, tmp_path, RATE))
+    return dec
+
+
+def _update(ch, at, levels):
+    from streamq.engine.blocks import CodebookUpdate
+    lv = np.linspace(-0.5, 0.5, levels)
+    return CodebookUpdate(1, at, ch, 0.5 * (lv[1:] + lv[:-1]), lv, 0)
+
+
+def test_decoder_refuses_indices_without_a_codebook_naming_the_sample(tmp_path):
+    from streamq.engine.blocks import IndexBlock, Packet
+    dec = _decoder(tmp_path, 2, 4)
+    idx = np.zeros((256, 2), np.uint8)
+    # channel 0 has its codebook from sample 0, channel 1 only from sample 100
+    pkt = Packet(IndexBlock(idx, 0, RATE), (_update(0, 0, 4), _update(1, 100, 4)))
+    with pytest.raises(StreamqError) as err:
+        dec.step(256, {"input": pkt})
+    msg = str(err.value)
+    assert "node 'dec'" in msg and "without a codebook" in msg
+    assert "at sample 0, channel 1" in msg and "\n" not in msg
+
+
+@pytest.mark.parametrize("with_event", [False, True])
+def test_decoder_refuses_an_index_out_of_range_naming_the_sample(tmp_path, with_event):
+    from streamq.engine.blocks import IndexBlock, Packet
+    dec = _decoder(tmp_path, 1, 4)
+    first = np.zeros((256, 1), np.uint8)
+    out = dec.step(256, {"input": Packet(IndexBlock(first, 0, RATE), (_update(0, 0, 4),))})
+    assert np.all(out.block.data == -0.5)
+    bad = np.ones((256, 1), np.uint8)
+    bad[37, 0] = 7
+    events = (_update(0, 300, 4),) if with_event else ()
+    with pytest.raises(StreamqError) as err:
+        dec.step(256, {"input": Packet(IndexBlock(bad, 256, RATE), events)})
+    msg = str(err.value)
+    assert "node 'dec'" in msg and "index 7 out of range" in msg and "4 levels" in msg
+    assert "at sample 293, channel 0" in msg and "\n" not in msg
+
+
+# -- the meter against numpy and scipy on the written files -------------------------------
+
+METER_CHAIN = f"""
+[graph]
+name = "meter"
+sample_rate = {RATE}
+[nodes.feed]
+use = "test-signal"
+scene = "drift"
+seconds = 3
+channels = 2
+[nodes.stats]
+use = "pdf-estimator"
+input = "feed"
+window = "100 ms"
+hop = "25 ms"
+[nodes.enc]
+use = "encoder"
+input = "feed"
+pdf = "stats"
+bits = 3
+adapt = "trailing"
+[nodes.dec]
+use = "decoder"
+input = "enc"
+[nodes.noise]
+use = "error-meter"
+reference = "feed"
+input = "dec"
+spectrum_size = 1024
+[nodes.keep]
+use = "file-sink"
+input = "dec"
+path = "decoded.wav"
+subtype = "DOUBLE"
+[nodes.ref]
+use = "file-sink"
+input = "feed"
+path = "reference.wav"
+subtype = "DOUBLE"
+[nodes.idx]
+use = "index-sink"
+input = "enc"
+path = "indices.sqi"
+"""
+
+
+@pytest.fixture(scope="module")
+def metered(tmp_path_factory):
+    """One metered run (trailing 3-bit Lloyd-Max, two channels): its report, the
+    written reference and decoded samples, and the index file's indices and
+    codebook announcements."""
+    from streamq.engine.indexio import IndexReader
+    out = tmp_path_factory.mktemp("meter")
+    rep = run_toml(METER_CHAIN, out, block=333)["meters"]["noise"]
+    ref, _ = sf.read(out / "reference.wav", always_2d=True)
+    dec, _ = sf.read(out / "decoded.wav", always_2d=True)
+    blocks, updates = [], []
+    with IndexReader(out / "indices.sqi") as reader:
+        for pkt in reader:
+            blocks.append(pkt.block.data)
+            updates.extend(pkt.events)
+    return out, rep, ref, dec, np.concatenate(blocks), updates
+
+
+def _periods(updates, ch: int, n: int):
+    """(start, stop, levels) of each codebook of channel ``ch`` over [0, n)."""
+    mine = sorted((u for u in updates if u.channel == ch), key=lambda u: u.at_sample)
+    starts = [u.at_sample for u in mine] + [n]
+    return [(a, b, np.asarray(u.levels)) for u, a, b in zip(mine, starts[:-1], starts[1:]) if b > a]
+
+
+def test_meter_noise_split_equals_numpy(metered):
+    """Overload = reference samples beyond the outermost reconstruction levels of the
+    codebook in force (README); granular = the rest of the noise."""
+    _, rep, ref, dec, _, updates = metered
+    n, C = ref.shape
+    err2 = (dec - ref) ** 2
+    over = np.zeros_like(ref, dtype=bool)
+    for ch in range(C):
+        for a, b, lv in _periods(updates, ch, n):
+            over[a:b, ch] = (ref[a:b, ch] < lv[0]) | (ref[a:b, ch] > lv[-1])
+    assert over.sum() > 0 and (~over).sum() > 0
+    assert rep["overload_samples"] == int(over.sum())
+    assert rep["overload_noise_power"] == pytest.approx(err2[over].sum() / (n * C), rel=1e-9)
+    assert rep["granular_noise_power"] == pytest.approx(err2[~over].sum() / (n * C), rel=1e-9)
+
+
+def test_meter_index_entropy_equals_numpy(metered):
+    """Index entropy per codebook period, -sum p log2 p of the indices coded with
+    each codebook, averaged over periods weighted by their samples (README)."""
+    _, rep, ref, _, idx, updates = metered
+    n, C = ref.shape
+    total, weight = 0.0, 0
+    for ch in range(C):
+        for a, b, _ in _periods(updates, ch, n):
+            counts = np.bincount(idx[a:b, ch].astype(np.int64))
+            p = counts[counts > 0] / (b - a)
+            total += (b - a) * float(-(p * np.log2(p)).sum())
+            weight += b - a
+    assert weight == n * C
+    assert rep["entropy_bits"] == pytest.approx(total / weight, rel=1e-12)
+
+
+def test_meter_spectra_equal_scipy_welch(metered):
+    """The meter's Welch spectra (spectrum_size samples per segment, periodic Hann,
+    no overlap, one-sided density, channels averaged) against
+    scipy.signal.welch(window="hann", noverlap=0, nperseg=spectrum_size) on the
+    written files, with detrend=False (the meter removes no mean per segment)."""
+    from scipy import signal
+    out, rep, ref, dec, _, _ = metered
+    rows = _read_csv(out / rep["spectrum_csv"])
+    freqs, ps = signal.welch(ref, fs=RATE, window="hann", nperseg=1024, noverlap=0,
+                             detrend=False, axis=0)
+    _, pn = signal.welch(dec - ref, fs=RATE, window="hann", nperseg=1024, noverlap=0,
+                         detrend=False, axis=0)
+    assert len(rows) == freqs.size
+    np.testing.assert_allclose([float(r["frequency_hz"]) for r in rows], freqs, atol=5e-4)
+    db = lambda p: 10 * np.log10(np.maximum(p.mean(axis=1), 1e-30))  # noqa: E731
+    # the CSV keeps 3 decimals (dB)
+    np.testing.assert_allclose([float(r["signal_psd_db"]) for r in rows], db(ps), atol=6e-4)
+    np.testing.assert_allclose([float(r["noise_psd_db"]) for r in rows], db(pn), atol=6e-4)

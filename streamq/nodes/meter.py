@@ -84,8 +84,23 @@ class Series:
 def write_series_csv(path, series: Series) -> None:
     """Write a :class:`Series` as CSV: a header of its columns, then one line
     per row; floats with 6 significant digits, whole numbers as integers,
-    None as an empty field. Written whole under a temporary name, then renamed
-    (:func:`streamq.engine.audiofile.replacing`); OSError is left to the caller."""
+    None as an empty field.
+
+    Parameters
+    ----------
+    path : str or Path
+        The file to write. It is written whole under a temporary name, then
+        renamed (:func:`streamq.engine.audiofile.replacing`): an older file
+        under that name stays until the new one is complete.
+    series : Series
+        The rows.
+
+    Raises
+    ------
+    OSError
+        Left to the caller, which turns it into a one-line error naming the
+        node and the file.
+    """
     with replacing(path, newline="") as f:
         w = csv.DictWriter(f, fieldnames=series.columns)
         w.writeheader()

@@ -99,7 +99,9 @@ def _layer(prev, jlo, jhi, p0, p1, p2):
         s0 = p0[j] - p0[i]
         s1 = p1[j] - p1[i]
         s2 = p2[j] - p2[i]
-        cost = np.maximum(s2 - s1 * s1 / s0, 0.0)
+        # a cell of zero-weight points costs nothing (0/0 would poison the minimum)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cost = np.where(s0 > 0.0, np.maximum(s2 - s1 * s1 / s0, 0.0), 0.0)
         val = prev[i] + cost
         best = np.minimum.reduceat(val, starts)
         hit = np.flatnonzero(val == best[rep])
@@ -129,7 +131,8 @@ def _dp_partition(c, w, count):
     p2 = np.concatenate(([0.0], np.cumsum(wn * cs * cs)))
     j = np.arange(k + 1)
     with np.errstate(divide="ignore", invalid="ignore"):
-        prev = np.where(j > 0, np.maximum(p2 - p1 * p1 / p0, 0.0), np.inf)
+        prev = np.where(j > 0, np.where(p0 > 0.0, np.maximum(p2 - p1 * p1 / p0, 0.0), 0.0),
+                        np.inf)
     prev[0] = np.inf
     args = []
     for m in range(2, count + 1):

@@ -616,3 +616,31 @@ def test_several_problems_reported_at_once(tmp_path):
         assert any(all(p in line for p in parts) for line in lines), (parts, lines)
     for line in lines:
         assert line.startswith(f"{g}: ")
+
+
+@pytest.mark.parametrize("adapt, size, bad", [
+    ("trailing", "bits = 13", True),
+    ("trailing", "levels = 4097", True),
+    ("trailing", "bits = 12", False),
+    ("fixed", "bits = 13", False),      # a fixed design on a model PDF has no DP limit
+])
+def test_optimal_on_histograms_has_a_level_limit(tmp_path, adapt, size, bad):
+    text = FEED + f"""
+        [nodes.stats]
+        use = "pdf-estimator"
+        input = "feed"
+
+        [nodes.enc]
+        use = "encoder"
+        input = "feed"
+        pdf = "stats"
+        method = "optimal"
+        adapt = "{adapt}"
+        {size}
+    """
+    if bad:
+        g, line = one_problem(tmp_path, text)
+        field = size.split()[0]
+        assert_names(line, g, "node 'enc'", f"field '{field}'", "at most 4096 levels")
+    else:
+        load_graph(write_graph(tmp_path, text))

@@ -5,7 +5,7 @@ Files for the error cases are put together here byte by byte from the layout
 in docs/index-file.md (not with IndexWriter), so these tests also pin the
 documented format.
 
-The fuzz runs 2500 examples by default; set STREAMQ_FUZZ_EXAMPLES for a
+The fuzz runs 4000 examples by default; set STREAMQ_FUZZ_EXAMPLES for a
 longer run, e.g. ``STREAMQ_FUZZ_EXAMPLES=100000 pytest tests/test_indexfile.py -k fuzz``.
 """
 
@@ -923,7 +923,7 @@ def exercise(path: Path, sizes) -> None:
         pass
 
 
-FUZZ_EXAMPLES = int(os.environ.get("STREAMQ_FUZZ_EXAMPLES", "2500"))
+FUZZ_EXAMPLES = int(os.environ.get("STREAMQ_FUZZ_EXAMPLES", "4000"))
 _FUZZ_DIR = tempfile.mkdtemp(prefix="streamq-fuzz-")
 atexit.register(shutil.rmtree, _FUZZ_DIR, True)
 

@@ -429,7 +429,8 @@ def test_pages_option_writes_what_streamq_run_writes(tmp_path):
     assert batch_main(*args) == 0
     first = _summary(out)
     assert first["pages"] is False
-    held = {"report.json", "batch.json", "noise-series.csv", "noise-spectrum.csv", "decoded.flac"}
+    held = {"report.json", "batch.json", "noise-series.csv", "noise-spectrum.csv", "decoded.flac",
+            "stats-windows.csv"}
     for e in first["files"]:
         assert names(e["folder"]) == held  # what the README lists, without --pages
 

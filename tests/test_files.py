@@ -255,6 +255,19 @@ def test_two_sinks_writing_one_file_are_refused(tmp_path, second):
     assert not list(out.iterdir())
 
 
+def test_two_sinks_behind_a_link_loop_are_compared_as_written(tmp_path):
+    # A path through a loop of symbolic links cannot be resolved: the two
+    # spellings are then compared as absolute paths, and still clash.
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / "loop").symlink_to(out / "loop")
+    g = _two_sinks(tmp_path, "loop/out.wav", "loop/out.wav")
+    with pytest.raises(StreamqError) as info:
+        build(load_graph(g), out)
+    lines = str(info.value).splitlines()
+    assert any("nodes 'keep' and 'copy'" in line and "field 'path'" in line for line in lines)
+
+
 def test_an_index_sink_and_a_file_sink_writing_one_file_are_refused(tmp_path):
     g = _two_sinks(tmp_path, "a.wav", "b.wav", third="a.wav")
     with pytest.raises(StreamqError) as info:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import signal
 import time
 from dataclasses import dataclass, field

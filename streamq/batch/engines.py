@@ -139,7 +139,7 @@ class DaskCluster:
             n = len(self.client.scheduler_info().get("workers", {}))
         except Exception:
             n = "?"
-        where = f"local Dask cluster" if self.cluster is not None else f"Dask cluster {self.address}"
+        where = "local Dask cluster" if self.cluster is not None else f"Dask cluster {self.address}"
         return f"{where} ({n} workers)"
 
     def submit(self, job: dict, done: "queue.Queue") -> None:

@@ -22,7 +22,6 @@ Channels are numbered from 0 in the file and in messages, as on the wire.
 from __future__ import annotations
 
 import json
-import math
 import os
 import struct
 import zlib

@@ -18,7 +18,7 @@ import numpy as np
 from pydantic import Field
 
 from streamq.engine.audiofile import replacing
-from streamq.engine.blocks import CodebookUpdate, Packet, StreamSpec
+from streamq.engine.blocks import CodebookUpdate, StreamSpec
 from streamq.engine.delay import DelayLine, FrameCollector
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register

@@ -67,14 +67,19 @@ def _boundaries(y, lengths, lam):
         lengths = lengths[keep]
 
 
+def _cell_sums(pre: HistogramPrefix, t):
+    """Weight, first and second moment sums of the cells that the thresholds
+    ``t`` (shifted coordinates, ascending) cut the histogram into."""
+    b = np.concatenate(([0], np.searchsorted(pre.shifted, t), [pre.shifted.size]))
+    return (pre.p0[b[1:]] - pre.p0[b[:-1]], pre.p1[b[1:]] - pre.p1[b[:-1]],
+            pre.p2[b[1:]] - pre.p2[b[:-1]])
+
+
 def _lagrangian_lloyd(pre: HistogramPrefix, y, lam, tol, max_iter):
     """Lagrangian Lloyd iterations for one multiplier (shifted coordinates).
 
     Returns (levels, lengths, thresholds, D, H, iterations, converged).
     """
-    p0, p1, p2 = pre.p0, pre.p1, pre.p2
-    cs = pre.shifted
-    n = cs.size
     lengths = np.full(y.size, math.log2(y.size))
     J_prev = 1e308  # finite, so that the first relative change is large
     D = H = 0.0
@@ -82,10 +87,7 @@ def _lagrangian_lloyd(pre: HistogramPrefix, y, lam, tol, max_iter):
     it = 0
     for it in range(1, max_iter + 1):
         y, lengths, t = _boundaries(y, lengths, lam)
-        b = np.concatenate(([0], np.searchsorted(cs, t), [n]))
-        s0 = p0[b[1:]] - p0[b[:-1]]
-        s1 = p1[b[1:]] - p1[b[:-1]]
-        s2 = p2[b[1:]] - p2[b[:-1]]
+        s0, s1, s2 = _cell_sums(pre, t)
         occ = s0 > 0.0
         if not occ.all():
             s0, s1, s2 = s0[occ], s1[occ], s2[occ]
@@ -104,10 +106,7 @@ def _lagrangian_lloyd(pre: HistogramPrefix, y, lam, tol, max_iter):
         y, lengths, t = _boundaries(y, lengths, lam)
         # the figures of the partition actually returned (the final
         # boundaries moved since D and H were last measured)
-        b = np.concatenate(([0], np.searchsorted(cs, t), [n]))
-        s0 = p0[b[1:]] - p0[b[:-1]]
-        s1 = p1[b[1:]] - p1[b[:-1]]
-        s2 = p2[b[1:]] - p2[b[:-1]]
+        s0, s1, s2 = _cell_sums(pre, t)
         D = float(np.maximum(s2 - 2.0 * y * s1 + y * y * s0, 0.0).sum())
         q = s0[s0 > 0.0]
         H = max(-float(np.dot(q, np.log2(q))), 0.0) + 0.0

@@ -71,6 +71,14 @@ def _compress(c, w, max_points):
     return c, w
 
 
+def _cell_cost(s0, s1, s2):
+    """Squared error of cells about their centroids from their moment sums
+    (weight, first, second): ``s2 - s1**2 / s0``, never below 0. A cell of
+    zero-weight points costs nothing (0/0 would poison the minimum)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(s0 > 0.0, np.maximum(s2 - s1 * s1 / s0, 0.0), 0.0)
+
+
 def _layer(prev, jlo, jhi, p0, p1, p2):
     """One DP layer by breadth-first divide and conquer.
 
@@ -99,9 +107,7 @@ def _layer(prev, jlo, jhi, p0, p1, p2):
         s0 = p0[j] - p0[i]
         s1 = p1[j] - p1[i]
         s2 = p2[j] - p2[i]
-        # a cell of zero-weight points costs nothing (0/0 would poison the minimum)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            cost = np.where(s0 > 0.0, np.maximum(s2 - s1 * s1 / s0, 0.0), 0.0)
+        cost = _cell_cost(s0, s1, s2)
         val = prev[i] + cost
         best = np.minimum.reduceat(val, starts)
         hit = np.flatnonzero(val == best[rep])
@@ -130,9 +136,7 @@ def _dp_partition(c, w, count):
     p1 = np.concatenate(([0.0], np.cumsum(wn * cs)))
     p2 = np.concatenate(([0.0], np.cumsum(wn * cs * cs)))
     j = np.arange(k + 1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        prev = np.where(j > 0, np.where(p0 > 0.0, np.maximum(p2 - p1 * p1 / p0, 0.0), 0.0),
-                        np.inf)
+    prev = np.where(j > 0, _cell_cost(p0, p1, p2), np.inf)
     prev[0] = np.inf
     args = []
     for m in range(2, count + 1):

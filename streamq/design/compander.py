@@ -274,6 +274,19 @@ def _tables(law: str) -> _G711Tables:
     return _G711Tables(law)
 
 
+def _integers(values, dtype, func: str, what: str) -> np.ndarray:
+    """``values`` as an array of ``dtype``: any integer array whose values fit."""
+    x = np.asarray(values)
+    if x.dtype != dtype:
+        info = np.iinfo(dtype)
+        if x.dtype.kind not in "iu":
+            raise StreamqError(f"{func} needs {info.dtype} {what}, got dtype {x.dtype}")
+        if x.size and (x.min() < info.min or x.max() > info.max):
+            raise StreamqError(f"{func} {what} must lie in {info.min}..{info.max}")
+        x = x.astype(dtype)
+    return x
+
+
 def g711_encode(samples, law: str) -> np.ndarray:
     """G.711 8-bit encoding of 16-bit linear PCM samples.
 
@@ -295,13 +308,7 @@ def g711_encode(samples, law: str) -> np.ndarray:
        frequencies", 1988.
     """
     key = _law(law)
-    x = np.asarray(samples)
-    if x.dtype != np.int16:
-        if x.dtype.kind not in "iu":
-            raise StreamqError(f"g711_encode needs int16 samples, got dtype {x.dtype}")
-        if x.size and (x.min() < -32768 or x.max() > 32767):
-            raise StreamqError("g711_encode samples must lie in -32768..32767")
-        x = x.astype(np.int16)
+    x = _integers(samples, np.int16, "g711_encode", "samples")
     return _tables(key).encode[x.view(np.uint16)]
 
 
@@ -325,13 +332,7 @@ def g711_decode(codes, law: str) -> np.ndarray:
        frequencies", 1988.
     """
     key = _law(law)
-    c = np.asarray(codes)
-    if c.dtype != np.uint8:
-        if c.dtype.kind not in "iu":
-            raise StreamqError(f"g711_decode needs uint8 codes, got dtype {c.dtype}")
-        if c.size and (c.min() < 0 or c.max() > 255):
-            raise StreamqError("g711_decode codes must lie in 0..255")
-        c = c.astype(np.uint8)
+    c = _integers(codes, np.uint8, "g711_decode", "codes")
     return _tables(key).decode[c]
 
 

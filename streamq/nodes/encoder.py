@@ -141,13 +141,12 @@ class EncoderConfig(NodeConfig):
             raise ValueError(f"pdf: adapt = \"{self.adapt}\" needs a pdf-estimator: set this field")
         if self.apply_after.value and self.adapt != "trailing":
             raise ValueError("apply_after: only adapt = \"trailing\" applies designs later")
-        on_histogram = self.adapt != "fixed" or self.train is not None
-        if self.method == "optimal" and on_histogram:
+        if self.method == "optimal" and (self.adapt != "fixed" or self.train is not None):
             from streamq.design.optimal import MAX_DP_LEVELS  # the design library loads lazily
-        if self.method == "optimal" and on_histogram and self.n_levels > MAX_DP_LEVELS:
-            raise ValueError(f"{'levels' if self.levels is not None else 'bits'}: method "
-                             f"\"optimal\" designs on histograms with at most "
-                             f"{MAX_DP_LEVELS} levels ({self.n_levels} asked)")
+            if self.n_levels > MAX_DP_LEVELS:   # designs on histograms: the DP's limit
+                raise ValueError(f"{'levels' if self.levels is not None else 'bits'}: method "
+                                 f"\"optimal\" designs on histograms with at most "
+                                 f"{MAX_DP_LEVELS} levels ({self.n_levels} asked)")
         if self.method == "ecsq" and self.entropy is None:
             raise ValueError("entropy: method \"ecsq\" needs a target: set this field (bits/sample)")
         return self

@@ -238,6 +238,12 @@ def replacing(path: Path, mode: str = "w", **open_kw):
         raise
 
 
+def unwritable(path: Path, exc: OSError) -> str:
+    """The one-line reason a file written through :func:`replacing` failed
+    (for :meth:`Node.fail` or a StreamqError)."""
+    return f"{path}: cannot write ({exc.strerror or exc}); nothing was left under that name"
+
+
 def _disk_full(folder: Path) -> bool:
     try:
         return shutil.disk_usage(folder).free < (1 << 20)

@@ -24,6 +24,7 @@ import numpy as np
 from pydantic import Field
 from scipy import optimize, special
 
+from streamq.engine.audiofile import unwritable
 from streamq.engine.blocks import Packet, PdfSnapshot, StreamSpec
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
@@ -416,12 +417,11 @@ class PdfEstimator(Node):
         """Write ``<node id>-windows.csv`` (if any samples came in)."""
         if not (complete or self.written):
             return
+        path = self.out_dir / f"{self.id}-windows.csv"
         try:
-            write_series_csv(self.out_dir / f"{self.id}-windows.csv", self.rows)
+            write_series_csv(path, self.rows)
         except OSError as exc:
-            path = self.out_dir / f"{self.id}-windows.csv"
-            raise self.fail(None, f"{path}: cannot write ({exc.strerror or exc}); nothing "
-                                  f"was left under that name") from None
+            raise self.fail(None, unwritable(path, exc)) from None
 
     def report(self):
         return {"snapshots": self.snapshots, "window_samples": self.W, "hop_samples": self.H,

@@ -17,7 +17,7 @@ from typing import Literal
 import numpy as np
 from pydantic import Field
 
-from streamq.engine.audiofile import replacing
+from streamq.engine.audiofile import replacing, unwritable
 from streamq.engine.blocks import CodebookUpdate, StreamSpec
 from streamq.engine.delay import DelayLine, FrameCollector
 from streamq.engine.node import Duration, Node, NodeConfig
@@ -496,8 +496,7 @@ class ErrorMeter(Node):
                                     f"{10 * np.log10(max(npow, 1e-30)):.3f}"])
                 self.csv_written.append(path.name)
         except OSError as exc:
-            raise self.fail(None, f"{path}: cannot write ({exc.strerror or exc}); nothing "
-                                  f"was left under that name") from None
+            raise self.fail(None, unwritable(path, exc)) from None
 
     def _written(self, name: str) -> str | None:
         return name if self.csv_written is None or name in self.csv_written else None

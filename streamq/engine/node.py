@@ -194,6 +194,17 @@ class Node:
         where = f"node '{self.id}'" + (f", field '{field_name}'" if field_name else "")
         return StreamqError(f"{where}: {message}")
 
+    @staticmethod
+    def problems_of(check: Callable[..., Any], *args) -> list[str]:
+        """Run a check that raises a one-line StreamqError (as :meth:`fail` makes)
+        and give its message as a list, empty when it passes: a
+        :meth:`precheck` made of the same checks ``open`` runs."""
+        try:
+            check(*args)
+        except StreamqError as exc:
+            return [str(exc)]
+        return []
+
     # -- life cycle (override) ------------------------------------------------
     def open(self, specs: dict[str, StreamSpec], ctx: RunContext) -> StreamSpec | None:
         raise NotImplementedError

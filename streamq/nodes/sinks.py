@@ -11,7 +11,6 @@ from streamq.engine.audiofile import SafeWriter, format_for
 from streamq.engine.background import BackgroundWriter
 from streamq.engine.node import Node, NodeConfig
 from streamq.engine.registry import register
-from streamq.errors import StreamqError
 
 
 class FileSinkConfig(NodeConfig):
@@ -37,23 +36,21 @@ class FileSink(Node):
         self.writer: SafeWriter | None = None
         self.latency = 0
 
-    def _format_problem(self, path) -> StreamqError | None:
-        """An output format libsndfile cannot write: an unknown extension (field
-        'path') or a subtype the format lacks (field 'subtype'); else None."""
+    def _check_format(self, path) -> None:
+        """Refuse an output format libsndfile cannot write: an unknown extension
+        (field 'path') or a subtype the format lacks (field 'subtype')."""
         import soundfile as sf
         try:
             fmt = format_for(Path(path))
         except ValueError as exc:
-            return self.fail("path", str(exc))
+            raise self.fail("path", str(exc)) from None
         subtype = self.config.subtype
         if subtype is not None and not sf.check_format(fmt, subtype):
-            return self.fail("subtype", f"{path}: subtype {subtype} is not available for {fmt} "
-                                        f"files (available: {', '.join(sf.available_subtypes(fmt))})")
-        return None
+            raise self.fail("subtype", f"{path}: subtype {subtype} is not available for {fmt} "
+                                       f"files (available: {', '.join(sf.available_subtypes(fmt))})")
 
     def precheck(self, graph_file, sample_rate) -> list[str]:
-        problem = self._format_problem(self.config.path)
-        return [] if problem is None else [str(problem)]
+        return self.problems_of(self._check_format, self.config.path)
 
     def open(self, specs, ctx):
         spec = specs["input"]
@@ -61,9 +58,7 @@ class FileSink(Node):
             raise self.fail("input", f"node '{self.config.input}' gives quantizer indices; "
                                      f"put a decoder before a file-sink (or use an index-sink)")
         path = ctx.resolve_path(self.config.path)
-        problem = self._format_problem(path)
-        if problem is not None:
-            raise problem
+        self._check_format(path)
         self.latency = spec.latency
         self.writer = SafeWriter(path, spec.rate, spec.channels, self.config.subtype,
                                  lambda m: self.fail("path", m))

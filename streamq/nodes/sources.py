@@ -11,7 +11,6 @@ from pydantic import Field, field_validator
 from streamq.engine.blocks import Packet, SignalBlock, StreamSpec
 from streamq.engine.node import NodeConfig, RunContext, SourceNode, input_path
 from streamq.engine.registry import register
-from streamq.errors import StreamqError
 from streamq.nodes import scenes
 from streamq.engine.audiofile import far_beyond_full_scale, open_for_reading, subtype_bits
 
@@ -75,12 +74,10 @@ class FileSource(SourceNode):
         return f, info
 
     def precheck(self, graph_file, sample_rate) -> list[str]:
-        try:
+        def check():
             f, _ = self._open_checked(input_path(self.config.path, graph_file), sample_rate)
-        except StreamqError as exc:
-            return [str(exc)]
-        f.close()
-        return []
+            f.close()
+        return self.problems_of(check)
 
     def open(self, specs, ctx: RunContext) -> StreamSpec:
         self.path = ctx.resolve_input(self.config.path)
@@ -169,27 +166,23 @@ class SceneSignal(SourceNode):
         super().__init__(node_id, config)
         self.position = 0
 
-    def _rate_problem(self, rate: int) -> StreamqError | None:
-        """What does not fit the sample rate ``rate``, or None."""
+    def _check_rate(self, rate: int) -> None:
+        """Refuse settings that do not fit the sample rate ``rate``."""
         c = self.config
         if round(c.seconds * rate) < 1:
-            return self.fail("seconds", f"{c.seconds:g} s rounds to 0 samples at {rate} Hz "
-                                        f"(one sample lasts {1 / rate:.3g} s)")
+            raise self.fail("seconds", f"{c.seconds:g} s rounds to 0 samples at {rate} Hz "
+                                       f"(one sample lasts {1 / rate:.3g} s)")
         if c.scene == "tone" and c.frequency >= rate / 2:
-            return self.fail("frequency", f"{c.frequency} Hz is at or above half the sample rate "
-                                          f"({rate / 2:g} Hz)")
-        return None
+            raise self.fail("frequency", f"{c.frequency} Hz is at or above half the sample rate "
+                                         f"({rate / 2:g} Hz)")
 
     def precheck(self, graph_file, sample_rate) -> list[str]:
-        problem = self._rate_problem(sample_rate)
-        return [] if problem is None else [str(problem)]
+        return self.problems_of(self._check_rate, sample_rate)
 
     def open(self, specs, ctx) -> StreamSpec:
         c = self.config
         self.length = int(round(c.seconds * ctx.sample_rate))
-        problem = self._rate_problem(ctx.sample_rate)
-        if problem is not None:
-            raise problem
+        self._check_rate(ctx.sample_rate)
         return StreamSpec("signal", ctx.sample_rate, c.channels, 0, c.bits, self.length,
                           {"scene": c.scene})
 

@@ -176,8 +176,8 @@ def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPre
     if c.ndim != 1 or w.ndim != 1:
         c = c.reshape(-1)
         w = w.reshape(-1)
-    total = float(w.sum()) if w.size else 0.0
     if validate:
+        total = float(w.sum()) if w.size else 0.0
         # cheap checks first; the detailed ones only name the culprit
         ok = (
             c.size > 0
@@ -191,10 +191,23 @@ def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPre
         )
         if not ok:
             c, w = histogram_arrays(c, w)
-            total = float(w.sum())
+    if c.size == 0 or c.shape != w.shape:
+        c, w = histogram_arrays(c, w)   # raises: the compiled sums need matching, non-empty arrays
+    from streamq.design.lloyd_kernels import prefix_sums
+    c = np.ascontiguousarray(c)
+    shifted, ref, p01, total2, power, single, total = prefix_sums(c, np.ascontiguousarray(w))
+    return HistogramPrefix(c, shifted, ref, p01, total2, power, 1 if single else -1, total)
+
+
+def _prefix_arrays(c, w):
+    """The definition of the prefix sums (compiled as
+    :func:`streamq.design.lloyd_kernels.prefix_sums`, which returns the same tuple).
+
+    Works about the weighted mean ``ref``: the second-moment sums then hold
+    the variance, the smallest possible, which keeps cancellation low.
+    """
     n = c.size
-    # work about the weighted mean: the second-moment sums then hold the
-    # variance, the smallest possible, which keeps cancellation low
+    total = float(w.sum())
     ref = float(w.dot(c)) / total
     if not math.isfinite(ref):
         ref = 0.5 * (float(c[0]) + float(c[-1]))
@@ -210,9 +223,8 @@ def histogram_prefix(centers, weights, *, validate: bool = True) -> HistogramPre
     total2 = float(wc.dot(cs))
     mean_s = float(p01[-1, 1])
     power = total2 + 2.0 * ref * mean_s + ref * ref
-    single = c[0] == c[-1] or float(w.max()) == total
-    return HistogramPrefix(c, cs, ref, p01, total2, max(power, 0.0),
-                           1 if single else -1, total)
+    single = bool(c[0] == c[-1] or np.count_nonzero(w) == 1)
+    return cs, ref, p01, total2, max(power, 0.0), single, total
 
 
 def sample_histogram(samples, bins: int = 4096, *, value_range=None):
@@ -264,6 +276,9 @@ def sample_histogram(samples, bins: int = 4096, *, value_range=None):
 def _cube_root_start(pre: "HistogramPrefix", count):
     """Levels at the quantiles of a p**(1/3) estimate (optimal compander rule).
 
+    The definition of :func:`streamq.design.lloyd_kernels.cube_root_start`,
+    which the designs run.
+
     The density is estimated on segments of equal probability (M = 4 L of
     them, at most half the number of occupied points), where it is
     ``(1/M) / width``; the mass of ``p**(1/3)`` on a segment is then
@@ -294,7 +309,8 @@ def _split_worst(S, y, bounds, pre):
     bin index bounds of each cell. Each empty level takes the upper half of
     the worst cell, split at its centroid. Returns the total distortion of
     the resulting partition and whether some empty cells could not be used
-    (all occupied cells are pure).
+    (all occupied cells are pure). Compiled as part of
+    :func:`streamq.design.lloyd_kernels.lloyd_iterate`.
     """
     s0 = S[:, 0]
     occ = s0 > 0.0
@@ -348,6 +364,9 @@ _TINY = 1e-10
 
 def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
     """Plain Lloyd on prefix sums; ``y`` are levels in shifted coordinates.
+
+    The definition of :func:`streamq.design.lloyd_kernels.lloyd_iterate`,
+    which the designs run (see :func:`_lloyd_run`).
 
     The loop is written for low per-iteration overhead (a handful of numpy
     calls on arrays of length L): the thresholds are kept doubled
@@ -411,21 +430,33 @@ def _lloyd_core(pre: HistogramPrefix, y, tol, max_iter, record):
     return y, it, converged, history, (filled if stuck else None)
 
 
+def _lloyd_run(pre: HistogramPrefix, y, tol, max_iter, record):
+    """:func:`_lloyd_core`, compiled: the same arguments and results."""
+    from streamq.design.lloyd_kernels import lloyd_iterate
+    y, it, converged, stuck, filled, history = lloyd_iterate(
+        pre.shifted, pre.p01, pre.total2, np.ascontiguousarray(y, dtype=np.float64),
+        tol, max_iter, record)
+    return y, it, converged, (history.tolist() if record else None), (filled if stuck else None)
+
+
+def _levels_codebook(lv, count, version):
+    """Codebook of levels with midpoint thresholds (``lv`` is taken over); a
+    degenerate level set is repaired by :func:`codebook_from_levels`."""
+    from streamq.design.lloyd_kernels import midpoint_thresholds
+    if lv.size == count:
+        th, ok = midpoint_thresholds(lv, True)
+        if ok:
+            return Codebook._trusted(lv, th, version)
+    return codebook_from_levels(lv, count, version)
+
+
 def _finish_histogram(pre: HistogramPrefix, lv, count, version):
     """Codebook from levels, with its exact MSE and cell probabilities.
 
     The figures are those of the returned codebook (its own nearest-
     neighbour partition of the histogram), computed from the prefix sums.
     """
-    ok = lv.size == count
-    if ok:
-        gaps = lv[1:] - lv[:-1]
-        th = lv[:-1] + 0.5 * gaps
-        ok = gaps.min() > 0.0 and (count == 2 or bool((th[1:] > th[:-1]).all()))
-    if ok:
-        cb = Codebook._trusted(lv, th, version)
-    else:
-        cb = codebook_from_levels(lv, count, version)
+    cb = _levels_codebook(lv, count, version)
     lv = cb.levels - pre.ref
     t = np.empty(count + 1)
     t[0] = -np.inf
@@ -448,7 +479,8 @@ def _finish_histogram(pre: HistogramPrefix, lv, count, version):
 
 def _initial_levels(pre, count, init):
     if init is None:
-        return _cube_root_start(pre, count)
+        from streamq.design.lloyd_kernels import cube_root_start
+        return cube_root_start(pre.shifted, pre.p0, count)
     lv = init.levels if isinstance(init, Codebook) else finite_array(init, "init")
     if lv.size != count:
         raise StreamqError(
@@ -460,6 +492,50 @@ def _initial_levels(pre, count, init):
     return y
 
 
+def _design_levels(pre: HistogramPrefix, count, init, tol, max_iter, record):
+    """Lloyd-Max levels (original coordinates) for a histogram's prefix sums:
+    (levels, iterations, converged, history). See :func:`lloyd_max_histogram`."""
+    y = _initial_levels(pre, count, init)
+    if pre.occupied == 1:
+        # constant signal: one value, spare levels spread around it
+        return pre.centers[np.argmax(pre.weights())].reshape(1), 0, True, None
+    if max_iter == 0:
+        return y + pre.ref, 0, False, None
+    y, it, converged, history, stuck = _lloyd_run(pre, y, tol, max_iter, record)
+    lv = y + pre.ref
+    if stuck is not None:
+        # every occupied cell is pure: keep the levels that own data and
+        # spread the spare ones between them
+        kept = lv[stuck]
+        # a pure cell's level is its value: snap to the exact data value
+        vals = np.unique(pre.centers[pre.weights() > 0])
+        i = np.clip(np.searchsorted(vals, kept), 1, max(vals.size - 1, 1))
+        lower = vals[i - 1]
+        upper = vals[np.minimum(i, vals.size - 1)]
+        kept = np.where(np.abs(kept - lower) <= np.abs(upper - kept), lower, upper)
+        lv = spread_levels(kept, count)
+    return lv, it, converged, history
+
+
+#: Stopping rule of the histogram designs (:func:`lloyd_max_histogram`).
+HISTOGRAM_TOL = 1e-7
+HISTOGRAM_MAX_ITER = 1000
+
+
+def lloyd_codebook(centers, weights, count: int, init=None) -> Codebook:
+    """The codebook of :func:`lloyd_max_histogram` (default stopping rule),
+    without its report and without checking the arguments.
+
+    For the streaming encoder's per-hop designs on the estimator's histograms:
+    ``centers`` and ``weights`` contiguous float64, sorted, finite,
+    non-negative with a positive total; ``count`` a valid level count; ``init``
+    None or a Codebook of ``count`` levels.
+    """
+    pre = histogram_prefix(centers, weights, validate=False)
+    lv, _, _, _ = _design_levels(pre, count, init, HISTOGRAM_TOL, HISTOGRAM_MAX_ITER, False)
+    return _levels_codebook(lv, count, 0)
+
+
 def lloyd_max_histogram(
     centers=None,
     weights=None,
@@ -467,8 +543,8 @@ def lloyd_max_histogram(
     *,
     init=None,
     prefix: HistogramPrefix | None = None,
-    tol: float = 1e-7,
-    max_iter: int = 1000,
+    tol: float = HISTOGRAM_TOL,
+    max_iter: int = HISTOGRAM_MAX_ITER,
     record: bool = False,
     version: int = 0,
     method: str = "lloyd-max",
@@ -526,29 +602,7 @@ def lloyd_max_histogram(
         levels = init.size if isinstance(init, Codebook) else np.asarray(init).size
     count = check_levels(levels)
     tol, max_iter = check_stopping(tol, max_iter)
-    y = _initial_levels(pre, count, init)
-    history = None
-    if pre.occupied == 1:
-        # constant signal: one value, spare levels spread around it
-        it, converged = 0, True
-        lv = pre.centers[np.argmax(pre.weights())].reshape(1)
-    elif max_iter == 0:
-        it, converged = 0, False
-        lv = y + pre.ref
-    else:
-        y, it, converged, history, stuck = _lloyd_core(pre, y, tol, max_iter, record)
-        lv = y + pre.ref
-        if stuck is not None:
-            # every occupied cell is pure: keep the levels that own data and
-            # spread the spare ones between them
-            kept = lv[stuck]
-            # a pure cell's level is its value: snap to the exact data value
-            vals = np.unique(pre.centers[pre.weights() > 0])
-            i = np.clip(np.searchsorted(vals, kept), 1, max(vals.size - 1, 1))
-            lower = vals[i - 1]
-            upper = vals[np.minimum(i, vals.size - 1)]
-            kept = np.where(np.abs(kept - lower) <= np.abs(upper - kept), lower, upper)
-            lv = spread_levels(kept, count)
+    lv, it, converged, history = _design_levels(pre, count, init, tol, max_iter, record)
     cb, mse, probs = _finish_histogram(pre, lv, count, version)
     p = probs[probs > 0.0]
     entropy = max(-float(p.dot(np.log2(p))), 0.0) + 0.0  # never -0.0

@@ -1,0 +1,215 @@
+"""The compiled Lloyd-Max design kernels against their numpy definitions.
+
+Tolerances: where a kernel adds a sum in index order while the definition uses
+numpy's pairwise ``sum`` or a BLAS ``dot``, the two differ by rounding only;
+those results are compared to 1e-12 relative to the data's scale (a few
+hundred ulps), everything else (partitions, iteration counts, stuck masks,
+integer code lengths) exactly.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from streamq.design import Codebook, lloyd_max_histogram
+from streamq.design import lloyd as ll
+from streamq.design import lloyd_kernels as K
+from streamq.engine.sideinfo import level_bits, round_levels
+
+RTOL = 1e-12
+
+
+def _histograms():
+    """Many random and edge-case histograms: (name, centers, weights)."""
+    rng = np.random.default_rng(2024)
+    out = []
+    for i in range(60):
+        n = int(rng.integers(2, 1500))
+        c = np.sort(rng.standard_normal(n)) * 10.0 ** rng.uniform(-6, 3)
+        w = np.floor(rng.laplace(size=n) ** 2 * rng.uniform(0, 20))   # many empty bins
+        if not w.sum() > 0:
+            w[rng.integers(n)] = 1.0
+        out.append((f"random-{i}", c, w))
+    # estimator-like windows: uniform bins, Laplacian counts, tracked span
+    for i, scale in enumerate([1e-5, 0.01, 0.3]):
+        x = rng.laplace(size=24_000) * scale
+        lo, hi = x.min(), x.max()
+        width = (hi - lo) / 1024
+        c = lo + (np.arange(1024) + 0.5) * width
+        w = np.bincount(np.clip(((x - lo) / width).astype(int), 0, 1023), minlength=1024) * 1.0
+        out.append((f"window-{i}", c, w))
+    c = np.linspace(-1, 1, 64)
+    ties = np.repeat(np.linspace(-1, 1, 16), 4)               # equal centers
+    out += [
+        ("one-occupied", c, np.where(np.arange(64) == 40, 3.0, 0.0)),
+        ("two-occupied", c, np.where(np.isin(np.arange(64), [3, 50]), 1.0, 0.0)),
+        ("few-occupied", c, np.where(np.arange(64) % 9 == 0, 2.0, 0.0)),
+        ("ties", ties, np.arange(64) % 3 + 0.0),
+        ("huge", c * 1e149, np.ones(64)),
+        ("tiny", c * 1e-149, np.ones(64)),
+        ("offset", 1e6 + c, np.ones(64)),
+        ("lopsided", c, np.r_[np.full(63, 1e-9), 1e9]),
+        ("one-bin", np.array([0.25]), np.array([2.0])),
+    ]
+    return out
+
+
+HISTOGRAMS = _histograms()
+IDS = [h[0] for h in HISTOGRAMS]
+
+
+def _close(a, b, scale):
+    np.testing.assert_allclose(a, b, rtol=RTOL, atol=RTOL * scale)
+
+
+def _span(c):
+    return max(float(np.max(np.abs(c))), 1e-300)
+
+
+@pytest.mark.parametrize("name,c,w", HISTOGRAMS, ids=IDS)
+def test_prefix_sums_equal_numpy_definition(name, c, w):
+    got = K.prefix_sums(c, w)
+    want = ll._prefix_arrays(c, w)
+    s = _span(c)
+    _close(got[1], want[1], s)                 # ref
+    _close(got[0], want[0], s)                 # shifted
+    _close(got[2][:, 0], want[2][:, 0], 1.0)   # cumulative weights
+    _close(got[2][:, 1], want[2][:, 1], s)
+    _close(got[3], want[3], s * s)             # total2
+    _close(got[4], want[4], s * s)             # power
+    assert got[5] == want[5]                   # single value
+    _close(got[6], want[6], float(w.max()))
+
+
+def _prefix(c, w):
+    return ll.histogram_prefix(c, w)
+
+
+@pytest.mark.parametrize("count", [2, 5, 64, 256])
+@pytest.mark.parametrize("name,c,w", HISTOGRAMS, ids=IDS)
+def test_cube_root_start_equals_numpy_definition(name, c, w, count):
+    pre = _prefix(c, w)
+    got = K.cube_root_start(pre.shifted, pre.p0, count)
+    _close(got, ll._cube_root_start(pre, count), _span(pre.shifted))
+
+
+def test_interp_walk_equals_numpy_interp():
+    rng = np.random.default_rng(1)
+    for _ in range(200):
+        xp = np.sort(rng.standard_normal(int(rng.integers(1, 50))))
+        xp[rng.random(xp.size) < 0.2] = xp[0]          # repeated points
+        xp.sort()
+        fp = rng.standard_normal(xp.size)
+        x = np.sort(np.r_[rng.standard_normal(40) * 2, xp[:3]])
+        np.testing.assert_array_equal(K._interp_sorted(x, xp, fp), np.interp(x, xp, fp))
+
+
+def _starts(pre, count, rng):
+    """A cold start, a random warm start and one far too wide (empty cells)."""
+    s = _span(pre.shifted)
+    yield ll._cube_root_start(pre, count)
+    yield np.sort(rng.choice(pre.shifted, count)) + rng.standard_normal(count) * 1e-3 * s
+    yield np.linspace(-3 * s, 3 * s, count)
+
+
+@pytest.mark.parametrize("count", [2, 7, 64, 256])
+@pytest.mark.parametrize("name,c,w", HISTOGRAMS, ids=IDS)
+def test_lloyd_iterate_equals_numpy_definition(name, c, w, count):
+    """Same partitions, stopping and stuck masks; levels and distortions to
+    rounding (the distortion is added in cell order). At a fixed point the
+    distortion repeats up to that rounding, and the rule ``D_prev - D <= tol *
+    D_prev`` with ``tol = 0`` may then stop one iteration apart, on the same
+    levels."""
+    pre = _prefix(c, w)
+    if pre.occupied == 1:
+        pytest.skip("a single value never reaches the iteration")
+    rng = np.random.default_rng(count)
+    s = _span(pre.shifted)
+    for y0 in _starts(pre, count, rng):
+        for tol, max_iter in ((1e-7, 1000), (0.0, 300), (1e-3, 2)):
+            y, it, conv, stuck, filled, hist = K.lloyd_iterate(
+                pre.shifted, pre.p01, pre.total2, np.ascontiguousarray(y0), tol, max_iter, True)
+            ry, rit, rconv, rhist, rfilled = ll._lloyd_core(pre, y0.copy(), tol, max_iter, True)
+            assert conv == rconv
+            if it != rit:
+                assert tol == 0.0 and abs(it - rit) == 1
+                longer = hist if it > rit else rhist
+                assert abs(longer[-1] - longer[-2]) <= RTOL * s * s
+            n = min(it, rit)
+            _close(hist[:n], rhist[:n], s * s)
+            assert stuck == (rfilled is not None)
+            if stuck:
+                np.testing.assert_array_equal(filled, rfilled)
+            _close(y, ry, s)
+
+
+@pytest.mark.parametrize("name,c,w", HISTOGRAMS, ids=IDS)
+def test_lloyd_max_histogram_equals_numpy_composition(name, c, w):
+    """The public design (compiled) against the numpy definitions end to end."""
+    for count in (4, 100):
+        cb, rep = lloyd_max_histogram(c, w, count, record=True)
+        pre = ll.HistogramPrefix(c, *_numpy_prefix_args(c, w))
+        if pre.occupied == 1:
+            continue
+        y, it, conv, hist, stuck = ll._lloyd_core(pre, ll._cube_root_start(pre, count),
+                                                  1e-7, 1000, True)
+        assert (rep.iterations, rep.converged) == (it, conv)
+        if stuck is None:
+            _close(cb.levels, y + pre.ref, _span(c))
+
+
+def _numpy_prefix_args(c, w):
+    cs, ref, p01, total2, power, single, total = ll._prefix_arrays(c, w)
+    return cs, ref, p01, total2, power, 1 if single else -1, total
+
+
+def test_lloyd_codebook_is_the_public_design_without_report():
+    for name, c, w in HISTOGRAMS:
+        for count in (3, 64):
+            want, _ = lloyd_max_histogram(c, w, count)
+            got = ll.lloyd_codebook(c, w, count)
+            np.testing.assert_array_equal(got.levels, want.levels)
+            np.testing.assert_array_equal(got.thresholds, want.thresholds)
+            warm = lloyd_max_histogram(c, w, count, init=want)[0]
+            np.testing.assert_array_equal(ll.lloyd_codebook(c, w, count, want).levels,
+                                          warm.levels)
+
+
+def test_midpoint_thresholds_equal_numpy_and_flag_valid_codebooks():
+    rng = np.random.default_rng(5)
+    cases = [np.sort(rng.standard_normal(n)) for n in (2, 3, 17, 256)]
+    cases += [np.array([0.0, 0.0, 1.0]), np.array([1.0, 0.5]), np.array([0.0, np.inf]),
+              np.array([1.0, np.nextafter(1.0, 2.0), np.nextafter(np.nextafter(1.0, 2.0), 2.0)]),
+              np.array([-1e308, 1e308]), np.array([0.5])]
+    for lv in cases:
+        with np.errstate(over="ignore", invalid="ignore"):
+            halfway = lv[:-1] + 0.5 * (lv[1:] - lv[:-1])
+            mean = 0.5 * (lv[:-1] + lv[1:])
+            steps = np.diff(lv)
+        for flag, want in ((True, halfway), (False, mean)):
+            th, ok = K.midpoint_thresholds(lv, flag)
+            np.testing.assert_array_equal(th, want)
+            valid = bool(lv.size >= 2 and np.all(np.isfinite(lv)) and np.all(steps > 0)
+                         and np.all(np.isfinite(want)) and np.all(np.diff(want) > 0))
+            assert ok == valid
+            if ok:   # what the validating constructor accepts
+                Codebook(lv, th)
+
+
+@pytest.mark.parametrize("grid_bits", [8, 12, 16, 24, 32])
+def test_grid_levels_equal_round_levels_and_level_bits(grid_bits):
+    rng = np.random.default_rng(grid_bits)
+    step = 2.0 ** -(grid_bits - 1)
+    cases = [np.sort(rng.laplace(size=n) * s) for n in (2, 16, 256, 4096)
+             for s in (1e-4, 0.05, 0.5, 3.0)]
+    cases += [np.zeros(8), np.full(4, 2.0), np.array([-1.0, 1.0 - step]),
+              np.sort(np.r_[np.arange(-3, 4) * step * 0.5, 0.37]),   # halfway cases
+              np.array([0.1]), np.array([-7.0, -7.0, 0.0, 5.0])]
+    for lv in cases:
+        got, bits = K.grid_levels(lv, grid_bits)
+        want = round_levels(lv, grid_bits)
+        np.testing.assert_array_equal(got, want)
+        assert bits == level_bits(want, grid_bits)
+    _, bits = K.grid_levels(np.array([0.5, 0.25]), grid_bits)
+    assert bits == -1                             # level_bits raises: not in order

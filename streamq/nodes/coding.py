@@ -10,7 +10,6 @@ from typing import Any
 
 import numpy as np
 
-from streamq.engine.sideinfo import level_bits, round_levels
 from streamq.errors import StreamqError
 
 PARAMETRIC = ("gaussian", "laplacian", "gamma", "uniform", "generalized-gaussian")
@@ -51,20 +50,28 @@ def model_codebook(method: str, n_levels: int, model: str, mean: float, std: flo
 
 
 def histogram_codebook(method: str, n_levels: int, centers: np.ndarray, counts: np.ndarray,
-                       init, opts: dict[str, Any]):
+                       init, opts: dict[str, Any], occupied: np.ndarray | None = None):
+    """The codebook of ``method`` for a window's histogram (``occupied``: the
+    indices of its occupied bins, if already at hand)."""
     d = _design()
     if method in ("lloyd-max", "optimal"):
-        occupied = centers[counts > 0]
+        if occupied is None:
+            occupied = np.flatnonzero(counts > 0)
         if 0 < occupied.size <= n_levels:
             # no more distinct values than levels: a level on each is exact (zero
             # error); the spare levels spread out beyond the extremes
-            return _exact_codebook(d, occupied, centers, n_levels)
+            return _exact_codebook(d, centers[occupied], centers, n_levels)
+    if method == "lloyd-max":
+        # the estimator's arrays need no checks and the encoder no report: the lean route
+        from streamq.design.lloyd import lloyd_codebook
+        return lloyd_codebook(centers, counts, n_levels, init)
     cb, _ = d.design(method, n_levels, centers=centers, weights=counts, init=init,
                      **_opts(method, opts))
     return pad_levels(cb, n_levels)
 
 
-def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int):
+def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int,
+               occupied: np.ndarray | None = None):
     """The codebook in force as the starting point of a design on a window, or
     None for the method's cold start.
 
@@ -86,6 +93,8 @@ def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int):
         The window's histogram.
     n_levels : int
         The level count asked for.
+    occupied : numpy.ndarray, optional
+        ``numpy.flatnonzero(counts > 0)``, if already at hand.
 
     Returns
     -------
@@ -93,14 +102,16 @@ def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int):
     """
     if init is None:
         return None
-    lv = np.asarray(init.levels, dtype=np.float64)
-    distinct = lv[np.concatenate(([True], lv[1:] > lv[:-1]))]
-    if distinct.size < n_levels:
+    lv = init.levels            # non-decreasing: the first and last are the extremes
+    if lv.size < n_levels:
         return None
-    occupied = np.flatnonzero(counts > 0)
+    if occupied is None:
+        occupied = np.flatnonzero(counts > 0)
     if occupied.size == 0:
         return None
-    if distinct[0] < centers[occupied[0]] or distinct[-1] > centers[occupied[-1]]:
+    if lv[0] < centers[occupied[0]] or lv[-1] > centers[occupied[-1]]:
+        return None
+    if np.count_nonzero(lv[1:] > lv[:-1]) + 1 < n_levels:
         return None
     return init
 
@@ -129,7 +140,9 @@ def _exact_codebook(d, occupied: np.ndarray, centers: np.ndarray, n_levels: int)
     above = spare - below
     lv = np.concatenate([occupied[0] - width * np.arange(below, 0, -1), occupied,
                          occupied[-1] + width * np.arange(1, above + 1)])
-    return d.Codebook(levels=lv)
+    from streamq.design.lloyd_kernels import midpoint_thresholds
+    th, ok = midpoint_thresholds(lv, False)
+    return d.Codebook._trusted(lv, th) if ok else d.Codebook(levels=lv)
 
 
 def fixed_codebook(method: str, n_levels: int, opts: dict[str, Any], samples: np.ndarray | None):
@@ -148,11 +161,15 @@ def finish_levels(cb, grid_bits: int | None, standard: bool):
 
     Standard tables (G.711) are known at both ends and cost nothing.
     """
-    d = _design()
     if standard or grid_bits is None:
         return cb, 0
-    levels = round_levels(cb.levels, grid_bits)
-    return d.Codebook(levels=levels, thresholds=cb.thresholds), level_bits(levels, grid_bits)
+    from streamq.design.lloyd_kernels import grid_levels
+    # round_levels and level_bits in one compiled pass; rounding keeps the levels in
+    # order, so they stay valid with the codebook's thresholds
+    levels, bits = grid_levels(np.ascontiguousarray(cb.levels), grid_bits)
+    if bits < 0:
+        raise ValueError("levels must be non-decreasing")
+    return _design().Codebook._trusted(levels, cb.thresholds), bits
 
 
 class BackwardAdapter:

@@ -53,11 +53,13 @@ def design_job(snap, init, recipe: dict):
         model = m["model"] if m["model"] in coding.PARAMETRIC else recipe["model"]
         cb = coding.model_codebook(recipe["method"], L, model, m["mean"], m["std"], m.get("shape"),
                                    opts)
-    elif snap.counts.sum() <= 0:
-        return None
     else:
-        init = coding.warm_start(init, snap.centers, snap.counts, L)
-        cb = coding.histogram_codebook(recipe["method"], L, snap.centers, snap.counts, init, opts)
+        occupied = np.flatnonzero(snap.counts > 0)   # (counts are non-negative)
+        if occupied.size == 0:
+            return None
+        init = coding.warm_start(init, snap.centers, snap.counts, L, occupied)
+        cb = coding.histogram_codebook(recipe["method"], L, snap.centers, snap.counts, init, opts,
+                                       occupied)
     return coding.finish_levels(cb, recipe["grid_bits"], recipe["standard"])
 
 

@@ -116,8 +116,9 @@ def _warm_worker() -> None:
     import streamq.design  # noqa: F401
     import streamq.nodes.encoder  # noqa: F401
     import streamq.nodes.estimator  # noqa: F401
-    from streamq.design.kernels import warm_up
-    warm_up()
+    from streamq.design import kernels, lloyd_kernels
+    kernels.warm_up()
+    lloyd_kernels.warm_up()
 
 
 def make_workers() -> tuple[ProcessPoolExecutor, ThreadPoolExecutor]:

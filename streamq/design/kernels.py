@@ -1,5 +1,7 @@
 """Compiled inner loops (numba) for the few places where numpy's per-call
-overhead or extra passes matter: the live audio callback's small blocks.
+overhead or extra passes matter: the live audio callback's small blocks, and
+the per-hop work of an adaptive chain (an encoder's stretch under one
+codebook, an estimator's window).
 
 On a shared machine the audio callback runs with cold caches after every
 wait, and each numpy call then costs tens of microseconds; one compiled call
@@ -70,6 +72,95 @@ def decode_rows(idx, table, out):  # pragma: no cover - compiled
                 return i * C + c
             out[i, c] = table[c, k]
     return -1
+
+
+@njit(cache=True)
+def _count_at_or_below(th, v):  # pragma: no cover - compiled
+    """How many of the ascending ``th`` are <= v (NaN: all of them), by a
+    binary search whose loop trip count does not depend on ``v``."""
+    m = th.shape[0]
+    if v != v:
+        return m
+    base = 0
+    k = m
+    while k > 1:
+        half = k >> 1
+        if th[base + half] <= v:
+            base += half
+        k -= half
+    if m > 0 and th[base] <= v:
+        base += 1
+    return base
+
+
+#: most thresholds one grid cell of :func:`encode_span` may hold before the
+#: search is used instead (thresholds bunched far closer than their mean gap)
+SPAN_CELL_LIMIT = 4
+
+
+@njit(cache=True)
+def encode_span(x, thresholds, out):  # pragma: no cover - compiled
+    """Cell indices of a stretch of one channel under one codebook.
+
+    Equal to ``out[:] = np.searchsorted(thresholds, x, side="right")`` for
+    every float64 value (NaN goes past the last threshold, as numpy sorts it).
+
+    A stretch at least four times as long as the codebook goes through a
+    uniform grid of ``4 (L - 1)`` cells over the thresholds' range, built per
+    call in O(L): ``first[c]`` counts the thresholds in cells below ``c``, and
+    a value in cell ``c`` then steps over the few thresholds of its own cell.
+    The cell map is one monotone function applied to thresholds and values
+    alike, so the count is exact. Shorter stretches, or thresholds bunched
+    more than ``SPAN_CELL_LIMIT`` to a cell, use a binary search per value.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n,), float64 (a column view is fine)
+    thresholds : ndarray, shape (L - 1,), float64, ascending
+    out : ndarray, shape (n,), integer; written in place
+    """
+    n = x.shape[0]
+    m = thresholds.shape[0]
+    size = max(4 * m, 64)
+    grid = m >= 2 and n >= size
+    lo = 0.0
+    scale = 0.0
+    if grid:
+        lo = thresholds[0]
+        span = thresholds[m - 1] - lo
+        scale = (size - 1) / span if span > 0.0 else 0.0
+        grid = 0.0 < scale < 1e300
+    top = size - 1.0
+    first = np.empty(0, np.int64)
+    if grid:
+        first = np.empty(size, np.int64)
+        j = 0
+        for c in range(size):
+            start = j
+            while j < m:
+                f = (thresholds[j] - lo) * scale
+                cj = size - 1 if f >= top else (int(f) if f > 0.0 else 0)
+                if cj > c:
+                    break
+                j += 1
+            first[c] = start
+            if j - start > SPAN_CELL_LIMIT:
+                grid = False
+                break
+    if not grid:
+        for i in range(n):
+            out[i] = _count_at_or_below(thresholds, x[i])
+        return
+    for i in range(n):
+        v = x[i]
+        if v != v:
+            out[i] = m
+            continue
+        f = (v - lo) * scale
+        k = first[size - 1 if f >= top else (int(f) if f > 0.0 else 0)]
+        while k < m and thresholds[k] <= v:
+            k += 1
+        out[i] = k
 
 
 @njit(cache=True)
@@ -273,6 +364,9 @@ def warm_up() -> None:
         encode_rows(column, row, idx[:, 1:2])
         decode_rows(idx, np.zeros((2, 1)), whole.copy())
         decode_rows(idx[:, 1:2], row, np.zeros((2, 4))[:, 1:2])
+        # an encoder's stretch: a column of a block, a codebook's read-only thresholds
+        encode_span(whole[:, 1], row[0], idx[:, 1])
+        encode_span(whole[:, 1], np.zeros(1), idx[:, 1])
     window_summary(np.zeros(2), 4, True, 1.0)          # (windows are contiguous copies)
     frame_sums(np.zeros((2, 7)), 2, 1)
     js_divergence(np.arange(2.0), np.ones(2), np.arange(2.0), np.ones(2), 4)

@@ -269,12 +269,14 @@ class Encoder(Node):
         self.delay_line = DelayLine(self.delay, self.C)
         self.dtype = index_dtype(self.L)
         self.kernel = None
+        from streamq.design.kernels import encode_rows, encode_span, warm_up
+        self.span_kernel = encode_span
+        if ctx.live:    # compiled (or loaded from the disk cache) now, not in the callback
+            warm_up()
         # live, float input, no delay: the callback's lean path (_live_step)
         self.fast_live = (self.live and not self.int16 and self.delay == 0
                           and self.backward is None and c.adapt in ("fixed", "trailing"))
         if self.fast_live:  # small blocks: one compiled call per block (compiled now)
-            from streamq.design.kernels import encode_rows, warm_up
-            warm_up()
             self.kernel = encode_rows
         return StreamSpec("index", self.rate, self.C, spec.latency + self.delay, None, spec.frames,
                           {"coding": coding_info, "n_levels": self.L,
@@ -387,10 +389,12 @@ class Encoder(Node):
     # an adaptive codebook that codes one hop (a few thousand samples) searches
     LUT_FROM = 16_384
 
-    def _encode(self, cb, x: np.ndarray) -> np.ndarray:
+    def _encode(self, cb, x: np.ndarray, out: np.ndarray) -> None:
+        """Indices of the stretch ``x`` of one channel under ``cb``, into ``out``."""
         if self.int16 and x.shape[0] >= self.LUT_FROM:
-            return cb.encode_int16((x * 32768.0).astype(np.int16))
-        return cb.encode(x)
+            out[:] = cb.encode_int16((x * 32768.0).astype(np.int16))
+        else:   # compiled: equal to cb.encode(x), without numpy's per-value search
+            self.span_kernel(x, cb.thresholds, out)
 
     def live_upstream(self):
         """Live runs get designs from the estimator's worker jobs, not its packets."""
@@ -449,7 +453,7 @@ class Encoder(Node):
         if self._steady():
             out = np.empty((frames, self.C), dtype=self.dtype)
             for ch, cb in enumerate(self.current):
-                out[:, ch] = self._encode(cb, x[:, ch])
+                self._encode(cb, x[:, ch], out[:, ch])
             return Packet(IndexBlock(out, s, self.rate, _versions(s, self.in_force, ())))
         x = self.delay_line.push(x)
         out = np.empty((frames, self.C), dtype=self.dtype)
@@ -460,9 +464,8 @@ class Encoder(Node):
                 oc = out[:, ch]
 
                 def seg(a, b, cb, xc=xc, oc=oc):
-                    idx = self._encode(cb, xc[a:b])
-                    oc[a:b] = idx
-                    return np.asarray(cb.levels)[idx]
+                    self._encode(cb, xc[a:b], oc[a:b])
+                    return np.asarray(cb.levels)[oc[a:b]]
 
                 for t, cb in self.backward.run(ch, s, frames, seg):
                     self._announce(t, ch, cb, 0)
@@ -504,10 +507,10 @@ class Encoder(Node):
                 cur, pos = in_force[ch], s
                 for t, cb in changes[ch]:
                     if t > pos:
-                        out[pos - s:t - s, ch] = self._encode(cur, x[pos - s:t - s, ch])
+                        self._encode(cur, x[pos - s:t - s, ch], out[pos - s:t - s, ch])
                     cur, pos = cb, t
                 if pos < e:
-                    out[pos - s:, ch] = self._encode(cur, x[pos - s:, ch])
+                    self._encode(cur, x[pos - s:, ch], out[pos - s:, ch])
         if not self.pending:     # the common case: no announcements in this block
             return Packet(IndexBlock(out, s, self.rate, _versions(s, at_start, ())))
         # announcements travel with the packet that holds their first sample

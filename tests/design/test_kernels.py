@@ -8,7 +8,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from streamq.design.kernels import decode_rows, encode_rows, monitor_block
+from streamq.design.kernels import (SPAN_CELL_LIMIT, decode_rows, encode_rows, encode_span,
+                                    monitor_block)
 
 
 def reference(x, th):
@@ -42,6 +43,57 @@ def test_encode_rows_equals_searchsorted_any_thresholds(case):
     out = np.empty(x.shape, dtype=np.uint8)
     encode_rows(x, th, out)
     np.testing.assert_array_equal(out, reference(x, th))
+
+
+def _span_case(rng, m, bunched):
+    """Thresholds (ascending, some tied or bunched) and values hitting them,
+    their neighbours, the ends and the non-finite values."""
+    th = np.sort(rng.laplace(size=m) * 0.1)
+    if bunched:     # half of them within 1e-12 of each other: the grid's cells overflow
+        th[: m // 2] = th[m // 2] + np.arange(m // 2) * 1e-14
+        th.sort()
+    if m > 4:
+        th[2] = th[1]   # a tie
+    x = np.concatenate([rng.laplace(size=20 * m + 300) * 0.12, th, np.nextafter(th, -np.inf),
+                        np.nextafter(th, np.inf),
+                        [np.nan, np.inf, -np.inf, 0.0, -0.0, 1e300, -1e300, 5e-324]])
+    return th, x
+
+
+@pytest.mark.parametrize("m", [1, 2, 3, 4, 15, 16, 17, 255, 4095])
+@pytest.mark.parametrize("bunched", [False, True])
+def test_encode_span_equals_searchsorted(m, bunched):
+    """Both of its routes (grid for long stretches, search for short ones or
+    bunched thresholds) against numpy's searchsorted, in column views."""
+    rng = np.random.default_rng(m)
+    th, x = _span_case(rng, m, bunched)
+    for n in (x.size, min(3 * m, x.size), 5):     # long: grid; short: search
+        block = np.stack([x[:n], x[:n][::-1]], axis=1)    # columns are strided views
+        out = np.zeros((n, 2), dtype=np.uint16)
+        encode_span(block[:, 1], th, out[:, 1])
+        np.testing.assert_array_equal(out[:, 1], np.searchsorted(th, block[:, 1], side="right"))
+        assert not out[:, 0].any()
+
+
+def test_encode_span_bunched_thresholds_take_the_search():
+    # (the limit is what keeps a value's walk inside its cell short)
+    th = np.concatenate([np.linspace(0.0, 1e-15, SPAN_CELL_LIMIT + 5), [0.5, 1.0]])
+    x = np.linspace(-0.1, 1.1, 5000)
+    out = np.empty(x.size, dtype=np.uint8)
+    encode_span(x, th, out)
+    np.testing.assert_array_equal(out, np.searchsorted(th, x, side="right"))
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.integers(1, 40).flatmap(lambda m: st.tuples(
+    hnp.arrays(np.float64, m, elements=st.floats(-2, 2, allow_nan=False)),
+    hnp.arrays(np.float64, st.integers(0, 400), elements=st.floats(-3, 3) | st.just(np.nan)))))
+def test_encode_span_equals_searchsorted_any_thresholds(case):
+    th, x = case
+    th = np.sort(th)   # duplicates allowed
+    out = np.empty(x.shape, dtype=np.uint8)
+    encode_span(x, th, out)
+    np.testing.assert_array_equal(out, np.searchsorted(th, x, side="right"))
 
 
 def test_decode_rows_equals_table_lookup_and_finds_bad_indices():

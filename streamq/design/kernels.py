@@ -367,7 +367,7 @@ def warm_up() -> None:
         # an encoder's stretch: a column of a block, a codebook's read-only thresholds
         encode_span(whole[:, 1], row[0], idx[:, 1])
         encode_span(whole[:, 1], np.zeros(1), idx[:, 1])
-    window_summary(np.zeros(2), 4, True, 1.0)          # (windows are contiguous copies)
+    window_summary(np.zeros((2, 2))[:, 0], 4, True, 1.0)   # (a column of a window)
     frame_sums(np.zeros((2, 7)), 2, 1)
     js_divergence(np.arange(2.0), np.ones(2), np.arange(2.0), np.ones(2), 4)
     for out in (np.empty((2, 2)), np.empty((2, 2), dtype=np.float32)):  # (device buffers)

@@ -1,6 +1,7 @@
-"""Writing files off the audio path: in live runs, sinks hand their blocks to
-a thread that does the I/O, so the audio callback only copies (DESIGN.md
-rule 4)."""
+"""Writing files off the main path: sinks hand their blocks to a thread that
+does the I/O. In live runs the audio callback then only copies (DESIGN.md
+rule 4); in an offline replay the disk works while the chain computes the
+next block."""
 
 from __future__ import annotations
 
@@ -14,11 +15,18 @@ _STOP = object()
 class BackgroundWriter:
     """Calls ``write(item)`` on a thread, in order. A failure is kept and
     raised by the next :meth:`put` or by :meth:`close` (after which nothing
-    more is written)."""
+    more is written).
 
-    def __init__(self, write: Callable[[Any], None], name: str = "streamq-writer"):
+    ``limit``: at most this many items wait; :meth:`put` then waits for the
+    thread. An offline replay sets it (its blocks come faster than a slow disk
+    takes them, and memory must not grow with the recording); a live run does
+    not (the audio callback never waits).
+    """
+
+    def __init__(self, write: Callable[[Any], None], name: str = "streamq-writer",
+                 limit: int | None = None):
         self._write = write
-        self._q: queue.SimpleQueue = queue.SimpleQueue()
+        self._q = queue.SimpleQueue() if limit is None else queue.Queue(maxsize=limit)
         self.error: BaseException | None = None
         self._t = threading.Thread(target=self._run, name=name, daemon=True)
         self._t.start()

@@ -204,9 +204,8 @@ def snapshot_job(t: int, win: np.ndarray, params: dict, last: list) -> list[PdfS
     out = []
     for ch in range(win.shape[1]):
         x = win[:, ch]
-        if weights is None and have:   # one compiled two-pass summary
-            centers, counts, stats = _summary(np.ascontiguousarray(x), params["bins"],
-                                              params["span"])
+        if weights is None and have:   # one compiled two-pass summary (of the column view)
+            centers, counts, stats = _summary(x, params["bins"], params["span"])
         else:
             centers, counts = window_histogram(x, params["bins"], params["span"], weights)
             stats = window_stats(x, weights)
@@ -272,7 +271,9 @@ class PdfEstimator(Node):
             raise self.fail("half_life", "half_life must be at least 1 sample")
         self.params = {"bins": self.config.bins, "span": self.config.span,
                        "half_life": self.half_life, "fit": self.config.fit}
-        self.buf = np.zeros((self.W, self.C))  # ring of the last W samples
+        # ring of the last W samples, kept twice over (rows i and W + i hold the
+        # same sample), so that every window is one contiguous stretch of it
+        self.buf = np.zeros((2 * self.W, self.C))
         self.written = 0
         self.pending: list[PdfSnapshot] = []  # snapshots due at the start of the next packet
         self.last: list[PdfSnapshot | None] = [None] * self.C
@@ -298,25 +299,27 @@ class PdfEstimator(Node):
                                                         "fit": self.config.fit}})
 
     def _push(self, data: np.ndarray) -> None:
-        """Append to the ring of the last W samples: O(len(data)), no shifting."""
+        """Append to the ring of the last W samples (both copies): O(len(data)),
+        no shifting."""
         n = data.shape[0]
         if n == 0:
             return
-        if n >= self.W:
-            data, n = data[-self.W:], self.W
-        at = self.written % self.W
-        first = min(n, self.W - at)
-        self.buf[at:at + first] = data[:first]
-        if first < n:
-            self.buf[:n - first] = data[first:]
         self.written += n
+        W = self.W
+        if n >= W:
+            data, n = data[-W:], W
+        at = (self.written - n) % W
+        first = min(n, W - at)
+        for base in (0, W):
+            self.buf[base + at:base + at + first] = data[:first]
+            if first < n:
+                self.buf[base:base + n - first] = data[first:]
 
     def _window(self, have: int) -> np.ndarray:
-        """The last ``have`` samples, oldest first (a copy)."""
-        end = self.written % self.W
-        if have <= end:
-            return self.buf[end - have:end].copy()
-        return np.concatenate([self.buf[self.W - (have - end):], self.buf[:end]])
+        """The last ``have`` samples, oldest first: a view of the ring, valid
+        until the next push."""
+        end = self.written % self.W + self.W
+        return self.buf[end - have:end]
 
     def _snapshot(self, t: int) -> list[PdfSnapshot]:
         snaps = snapshot_job(t, self._window(min(self.W, t)), self.params, self.last)
@@ -385,7 +388,7 @@ class PdfEstimator(Node):
                     continue
                 requests = [h.requests(t) for h in self.listeners]
                 try:
-                    fut = self.ctx.offload(hop_job, t, self._window(min(self.W, t)),
+                    fut = self.ctx.offload(hop_job, t, self._window(min(self.W, t)).copy(),
                                            self.params, list(self.last), requests)
                 except BrokenExecutor as exc:
                     self._lost(exc)

@@ -9,6 +9,9 @@ from pydantic import Field
 
 from streamq.engine.audiofile import SafeWriter, format_for
 from streamq.engine.background import BackgroundWriter
+
+#: blocks an offline file-sink may hold for its writing thread (memory bound)
+OFFLINE_QUEUE = 4
 from streamq.engine.node import Node, NodeConfig
 from streamq.engine.registry import register
 
@@ -62,8 +65,10 @@ class FileSink(Node):
         self.latency = spec.latency
         self.writer = SafeWriter(path, spec.rate, spec.channels, self.config.subtype,
                                  lambda m: self.fail("path", m))
-        # live runs: the audio callback only queues a copy; a thread writes
-        self.background = BackgroundWriter(self.writer.write) if ctx.live else None
+        # a thread writes: live, the audio callback only queues a copy; offline,
+        # the disk works while the chain computes the next block
+        self.background = BackgroundWriter(self.writer.write,
+                                           limit=None if ctx.live else OFFLINE_QUEUE)
         return None
 
     def step(self, frames, inputs):

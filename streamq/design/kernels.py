@@ -75,27 +75,21 @@ def decode_rows(idx, table, out):  # pragma: no cover - compiled
 
 
 @njit(cache=True)
-def _count_at_or_below(th, v):  # pragma: no cover - compiled
-    """How many of the ascending ``th`` are <= v (NaN: all of them), by a
-    binary search whose loop trip count does not depend on ``v``."""
-    m = th.shape[0]
-    if v != v:
-        return m
-    base = 0
-    k = m
+def _count_at_or_below(th, a, b, v):  # pragma: no cover - compiled
+    """``a`` plus how many of the ascending ``th[a:b]`` are <= v (v not NaN),
+    by a binary search whose loop trip count does not depend on ``v``."""
+    k = b - a
+    if k <= 0:
+        return a
+    base = a
     while k > 1:
         half = k >> 1
         if th[base + half] <= v:
             base += half
         k -= half
-    if m > 0 and th[base] <= v:
+    if th[base] <= v:
         base += 1
     return base
-
-
-#: most thresholds one grid cell of :func:`encode_span` may hold before the
-#: search is used instead (thresholds bunched far closer than their mean gap)
-SPAN_CELL_LIMIT = 4
 
 
 @njit(cache=True)
@@ -107,11 +101,13 @@ def encode_span(x, thresholds, out):  # pragma: no cover - compiled
 
     A stretch at least four times as long as the codebook goes through a
     uniform grid of ``4 (L - 1)`` cells over the thresholds' range, built per
-    call in O(L): ``first[c]`` counts the thresholds in cells below ``c``, and
-    a value in cell ``c`` then steps over the few thresholds of its own cell.
+    call in O(L): ``first[c]`` counts the thresholds in cells below ``c``, so
+    a value in cell ``c`` has at least ``first[c]`` thresholds below it and
+    searches only its own cell's few, ``thresholds[first[c]:first[c + 1]]``.
     The cell map is one monotone function applied to thresholds and values
-    alike, so the count is exact. Shorter stretches, or thresholds bunched
-    more than ``SPAN_CELL_LIMIT`` to a cell, use a binary search per value.
+    alike (a threshold in a lower cell is below the value, one in a higher
+    cell above it), so the count is exact. Shorter stretches search all the
+    thresholds.
 
     Parameters
     ----------
@@ -130,37 +126,30 @@ def encode_span(x, thresholds, out):  # pragma: no cover - compiled
         span = thresholds[m - 1] - lo
         scale = (size - 1) / span if span > 0.0 else 0.0
         grid = 0.0 < scale < 1e300
-    top = size - 1.0
-    first = np.empty(0, np.int64)
-    if grid:
-        first = np.empty(size, np.int64)
-        j = 0
-        for c in range(size):
-            start = j
-            while j < m:
-                f = (thresholds[j] - lo) * scale
-                cj = size - 1 if f >= top else (int(f) if f > 0.0 else 0)
-                if cj > c:
-                    break
-                j += 1
-            first[c] = start
-            if j - start > SPAN_CELL_LIMIT:
-                grid = False
-                break
     if not grid:
         for i in range(n):
-            out[i] = _count_at_or_below(thresholds, x[i])
+            v = x[i]
+            out[i] = m if v != v else _count_at_or_below(thresholds, 0, m, v)
         return
+    top = size - 1.0
+    first = np.empty(size + 1, np.int64)
+    j = 0
+    for c in range(size):
+        first[c] = j
+        while j < m:
+            f = (thresholds[j] - lo) * scale
+            if (size - 1 if f >= top else (int(f) if f > 0.0 else 0)) > c:
+                break
+            j += 1
+    first[size] = m
     for i in range(n):
         v = x[i]
         if v != v:
             out[i] = m
             continue
         f = (v - lo) * scale
-        k = first[size - 1 if f >= top else (int(f) if f > 0.0 else 0)]
-        while k < m and thresholds[k] <= v:
-            k += 1
-        out[i] = k
+        c = size - 1 if f >= top else (int(f) if f > 0.0 else 0)
+        out[i] = _count_at_or_below(thresholds, first[c], first[c + 1], v)
 
 
 @njit(cache=True)

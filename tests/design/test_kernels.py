@@ -8,8 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from streamq.design.kernels import (SPAN_CELL_LIMIT, decode_rows, encode_rows, encode_span,
-                                    monitor_block)
+from streamq.design.kernels import decode_rows, encode_rows, encode_span, monitor_block
 
 
 def reference(x, th):
@@ -49,7 +48,7 @@ def _span_case(rng, m, bunched):
     """Thresholds (ascending, some tied or bunched) and values hitting them,
     their neighbours, the ends and the non-finite values."""
     th = np.sort(rng.laplace(size=m) * 0.1)
-    if bunched:     # half of them within 1e-12 of each other: the grid's cells overflow
+    if bunched:     # half of them within 1e-12 of each other: many to a grid cell
         th[: m // 2] = th[m // 2] + np.arange(m // 2) * 1e-14
         th.sort()
     if m > 4:
@@ -63,8 +62,9 @@ def _span_case(rng, m, bunched):
 @pytest.mark.parametrize("m", [1, 2, 3, 4, 15, 16, 17, 255, 4095])
 @pytest.mark.parametrize("bunched", [False, True])
 def test_encode_span_equals_searchsorted(m, bunched):
-    """Both of its routes (grid for long stretches, search for short ones or
-    bunched thresholds) against numpy's searchsorted, in column views."""
+    """Both of its routes (grid for long stretches, search for short ones),
+    with spread and bunched thresholds, against numpy's searchsorted, in
+    column views."""
     rng = np.random.default_rng(m)
     th, x = _span_case(rng, m, bunched)
     for n in (x.size, min(3 * m, x.size), 5):     # long: grid; short: search
@@ -75,9 +75,9 @@ def test_encode_span_equals_searchsorted(m, bunched):
         assert not out[:, 0].any()
 
 
-def test_encode_span_bunched_thresholds_take_the_search():
-    # (the limit is what keeps a value's walk inside its cell short)
-    th = np.concatenate([np.linspace(0.0, 1e-15, SPAN_CELL_LIMIT + 5), [0.5, 1.0]])
+def test_encode_span_bunched_thresholds_share_a_cell():
+    # nine thresholds in the grid's first cell: searched within the cell
+    th = np.concatenate([np.linspace(0.0, 1e-15, 9), [0.5, 1.0]])
     x = np.linspace(-0.1, 1.1, 5000)
     out = np.empty(x.size, dtype=np.uint8)
     encode_span(x, th, out)

@@ -217,8 +217,9 @@ def window_summary(x, bins, tracked, clip_level):  # pragma: no cover - compiled
 
     Returns
     -------
-    (counts, lo, width, mean, variance, fourth central moment, peak |x|,
-    samples with |x| >= clip_level)
+    (bin centers, counts, mean, variance, fourth central moment, peak |x|,
+    samples with |x| >= clip_level); the centers are those of
+    ``window_histogram``, ``lo + (k + 0.5) * width``.
     """
     n = x.shape[0]
     lo = x[0]
@@ -263,7 +264,10 @@ def window_summary(x, bins, tracked, clip_level):  # pragma: no cover - compiled
         d2 = d * d
         m2 += d2
         m4 += d2 * d2
-    return counts, lo, width, mean, m2 / n, m4 / n, peak, clipped
+    centers = np.empty(bins)
+    for k in range(bins):
+        centers[k] = lo + (k + 0.5) * width
+    return centers, counts, mean, m2 / n, m4 / n, peak, clipped
 
 
 @njit(cache=True, nogil=True)

@@ -91,9 +91,9 @@ def _summary(x: np.ndarray, bins: int, span: str) -> tuple[np.ndarray, np.ndarra
     """``window_histogram`` and ``window_stats`` of an unweighted window, in one
     compiled pass pair (streamq.design.kernels.window_summary)."""
     from streamq.design.kernels import window_summary
-    counts, lo, width, mean, var, m4, peak, clipped = window_summary(
+    centers, counts, mean, var, m4, peak, clipped = window_summary(
         x, bins, span != "full-scale", CLIP_LEVEL)
-    return _centers(lo, width, bins), counts, _stats(mean, var, m4, peak, clipped, x.shape[0])
+    return centers, counts, _stats(mean, var, m4, peak, clipped, x.shape[0])
 
 
 def window_stats(x: np.ndarray, weights: np.ndarray | None = None) -> dict[str, float]:

@@ -271,28 +271,184 @@ def window_summary(x, bins, tracked, clip_level):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def frame_sums(rows, C, F):  # pragma: no cover - compiled
-    """Per-frame sums of a meter's rows, each frame's samples added in order.
+def meter_rows(ref, x, bounds, version, idx, active, counts, pend, fill, sums, vers, k,
+               peak):  # pragma: no cover - compiled
+    """One pass of a meter over a stretch with one codebook per channel.
 
-    ``rows`` holds, per sample, the reference (C columns), the error (C) and an
-    overload flag (C). For each whole frame of ``F`` rows and channel ``c`` the
-    result holds sum r^2, sum e^2, sum e^2 * overload and sum overload, as the
-    columns ``c``, ``C + c``, ``2C + c`` and ``3C + c``.
+    Each sample makes one meter row: the reference (C columns), the error
+    ``x - ref`` (C), the overload flag (C; 1.0 where the reference lies below
+    ``bounds[c, 0]`` or above ``bounds[c, 1]``, else 0.0) and ``version`` (one
+    column). Rows are cut into frames of ``F = pend.shape[0]`` rows, counted
+    on from the ``fill`` rows of the unfinished frame in ``pend``. For each
+    frame this call finishes, ``sums[k]`` gets, per channel ``c``, sum r^2,
+    sum e^2, sum e^2 * overload and sum overload (columns ``c``, ``C + c``,
+    ``2C + c``, ``3C + c``), each added in row order from zero, so a frame's
+    sums never depend on where the stream was cut into calls; ``vers[k]``
+    gets ``version`` and ``k`` moves on. The rows of a frame left unfinished
+    are kept in ``pend``.
+
+    Equal to: ``rows = concat(pend[:fill], new rows)``, ``K = len(rows) // F``;
+    ``sums[k:k + K]`` = ``cumsum`` of ``[r*r, e*e, e*e*ov, ov]`` over each
+    frame's rows, last entry; ``vers[k:k + K] = version``;
+    ``pend[:len(rows) - K * F] = rows[K * F:]``; for every channel ``c`` with
+    ``active[c]``, ``counts[c] += bincount(idx[:, c], minlength=counts.shape[1])``
+    (``idx`` may have no rows: nothing is counted); the peak is
+    ``max(peak, abs(x - ref).max())``, NaN when either is NaN.
+
+    Parameters
+    ----------
+    ref, x : ndarray, shape (n, C), float64
+        Reference and measured signal.
+    bounds : ndarray, shape (C, 2), float64
+        Lowest and highest level of each channel's codebook.
+    version : float
+        Codebook version in force (channel 0; -1 for none).
+    idx : ndarray, shape (n, C) or (0, C), unsigned integer
+        Cell indices (each below ``counts.shape[1]``), or no rows.
+    active : ndarray, shape (C,), bool
+        Channels whose indices are counted.
+    counts : ndarray, shape (C, L), int64; updated in place
+    pend : ndarray, shape (F, 3C + 1), float64; updated in place
+    fill : int
+        Rows already in ``pend``.
+    sums : ndarray, shape (K_max, 4C), float64; written from row ``k``
+    vers : ndarray, shape (K_max,), float64; written from ``k``
+    k : int
+        Frames already written.
+    peak : float
+        Largest absolute error so far (NaN once any error was NaN).
+
+    Returns
+    -------
+    (fill, k, peak)
+        The rows now in ``pend``, the frames now written, the new peak.
     """
-    K = rows.shape[0] // F
-    out = np.zeros((K, 4 * C))
-    for k in range(K):
-        for i in range(k * F, (k + 1) * F):
+    n, C = ref.shape
+    F = pend.shape[0]
+    if idx.shape[0] > 0:
+        for c in range(C):
+            if active[c]:
+                for i in range(n):
+                    counts[c, idx[i, c]] += 1
+    top = 0.0
+    nan = peak != peak
+    pos = 0
+    while pos < n:
+        take = min(F - fill, n - pos)
+        if fill + take < F:                  # the frame stays unfinished: keep its rows
+            for i in range(take):
+                row = fill + i
+                for c in range(C):
+                    r = ref[pos + i, c]
+                    e = x[pos + i, c] - r
+                    pend[row, c] = r
+                    pend[row, C + c] = e
+                    pend[row, 2 * C + c] = 1.0 if (r < bounds[c, 0] or r > bounds[c, 1]) else 0.0
+                    a = abs(e)
+                    if a > top:
+                        top = a
+                    elif a != a:
+                        nan = True
+                pend[row, 3 * C] = version
+            fill += take
+        else:                                # the frame ends here: its sums, in row order
             for c in range(C):
-                r = rows[i, c]
-                e = rows[i, C + c]
-                ov = rows[i, 2 * C + c]
-                e2 = e * e
-                out[k, c] += r * r
-                out[k, C + c] += e2
-                out[k, 2 * C + c] += e2 * ov
-                out[k, 3 * C + c] += ov
-    return out
+                lo = bounds[c, 0]
+                hi = bounds[c, 1]
+                sr = 0.0
+                se = 0.0
+                so = 0.0
+                sn = 0.0
+                for i in range(fill):
+                    r = pend[i, c]
+                    e = pend[i, C + c]
+                    ov = pend[i, 2 * C + c]
+                    e2 = e * e
+                    sr += r * r
+                    se += e2
+                    so += e2 * ov
+                    sn += ov
+                for i in range(pos, pos + take):
+                    r = ref[i, c]
+                    e = x[i, c] - r
+                    ov = 1.0 if (r < lo or r > hi) else 0.0
+                    e2 = e * e
+                    sr += r * r
+                    se += e2
+                    so += e2 * ov
+                    sn += ov
+                    a = abs(e)
+                    if a > top:
+                        top = a
+                    elif a != a:
+                        nan = True
+                sums[k, c] = sr
+                sums[k, C + c] = se
+                sums[k, 2 * C + c] = so
+                sums[k, 3 * C + c] = sn
+            vers[k] = version
+            k += 1
+            fill = 0
+        pos += take
+    return fill, k, (np.nan if nan else max(peak, top))
+
+
+@njit(cache=True, nogil=True)
+def window_segments(ref, x, window, part, pos, out):  # pragma: no cover - compiled
+    """Cut reference and error into windowed segments, one contiguous row
+    per segment and signal, ready for an FFT along the last axis.
+
+    Signal ``s`` is reference channel ``s`` for ``s < C`` and error channel
+    ``s - C`` (``x - ref``) above. The unfinished segment waits in ``part``
+    (its first ``pos`` samples, already windowed).
+
+    Equal to: ``rows = concat(unwindowed part[:, :pos].T, concat([ref, x - ref], axis=1))``;
+    ``out[:] = rows[:K * N].reshape(K, N, 2C).transpose(2, 0, 1) * window``
+    with ``N = window.shape[0]`` and ``K = out.shape[1] = len(rows) // N``;
+    the rest, windowed, in ``part[:, :pos_new]``.
+
+    Parameters
+    ----------
+    ref, x : ndarray, shape (n, C), float64
+    window : ndarray, shape (N,), float64
+    part : ndarray, shape (2C, N), float64; updated in place
+    pos : int
+        Samples already in ``part``.
+    out : ndarray, shape (2C, K, N), float64; written whole
+
+    Returns
+    -------
+    int
+        The samples now in ``part``.
+    """
+    n, C = ref.shape
+    N = window.shape[0]
+    K = out.shape[1]
+    if K > 0:
+        out[:, 0, :pos] = part[:, :pos]
+    for c in range(C):
+        i = 0
+        g = 0
+        p = pos
+        while i < n:
+            take = min(N - p, n - i)
+            if g < K:
+                dr = out[c, g]
+                de = out[C + c, g]
+            else:
+                dr = part[c]
+                de = part[C + c]
+            for j in range(take):
+                r = ref[i + j, c]
+                w = window[p + j]
+                dr[p + j] = r * w
+                de[p + j] = (x[i + j, c] - r) * w
+            i += take
+            p += take
+            if p == N:
+                p = 0
+                g += 1
+    return (pos + n) % N
 
 
 @njit(cache=True, nogil=True)
@@ -361,7 +517,13 @@ def warm_up() -> None:
         encode_span(whole[:, 1], row[0], idx[:, 1])
         encode_span(whole[:, 1], np.zeros(1), idx[:, 1])
     window_summary(np.zeros((2, 2))[:, 0], 4, True, 1.0)   # (a column of a window)
-    frame_sums(np.zeros((2, 7)), 2, 1)
+    two = np.zeros((1, 2))
+    for idx in (np.zeros((1, 2), dtype=np.uint8), np.zeros((1, 2), dtype=np.uint16),
+                np.zeros((1, 2), dtype=np.uint32), np.zeros((0, 2), dtype=np.uint8)):
+        meter_rows(two, two, np.zeros((2, 2)), 0.0, idx, np.ones(2, dtype=np.bool_),
+                   np.zeros((2, 1), dtype=np.int64), np.zeros((2, 7)), 0, np.zeros((1, 8)),
+                   np.zeros(1), 0, 0.0)
+    window_segments(two, two, np.ones(2), np.zeros((4, 2)), 0, np.zeros((4, 0, 2)))
     js_divergence(np.arange(2.0), np.ones(2), np.arange(2.0), np.ones(2), 4)
     for out in (np.empty((2, 2)), np.empty((2, 2), dtype=np.float32)):  # (device buffers)
         monitor_block(whole, whole, 0.0, -1.0, 1.0, 1.0, 0.5, out)

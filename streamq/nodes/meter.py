@@ -19,7 +19,7 @@ from pydantic import Field
 
 from streamq.engine.audiofile import replacing, unwritable
 from streamq.engine.blocks import CodebookUpdate, StreamSpec
-from streamq.engine.delay import DelayLine, FrameCollector
+from streamq.engine.delay import DelayLine
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
 
@@ -168,15 +168,19 @@ class ErrorMeter(Node):
         self.sig, self.noi, self.ovn, self.ovc = z.copy(), z.copy(), z.copy(), z.copy()
         self.seg_sum, self.seg_n = z.copy(), z.copy()
         self.peak = 0.0
-        self.frames_in = FrameCollector(self.F, 3 * C + 1)
+        # the unfinished frame's rows: reference, error, overload flag per channel
+        # and channel 0's codebook version (see kernels.meter_rows)
+        self.pend = np.empty((self.F, 3 * C + 1))
+        self.fill = 0
         # series
         self.rows = Series()
         self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
         self.win_events: dict[int, list[int]] = {}
         # spectra
-        self.spec_in = FrameCollector(self.N, 2 * C)
         # periodic ("DFT-even") Hann window, as scipy.signal.welch's window="hann"
         self.spec_win = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(self.N) / self.N)
+        self.spec_part = np.empty((2 * C, self.N))   # the unfinished segment, windowed
+        self.spec_pos = 0
         self.spec_acc = np.zeros((2, self.N // 2 + 1))
         self.spec_frames = 0
         # codebooks in force (output time) and what they cost
@@ -185,36 +189,64 @@ class ErrorMeter(Node):
         self.side_bits = 0
         self.updates = 0
         self.levels_seen: int | None = self.L
-        self.ent_counts: list[np.ndarray | None] = [None] * C
+        # index counts per channel since its last codebook change (grown as needed)
+        self.ent_counts = np.zeros((C, self.L or 0), dtype=np.int64)
+        self.counting = np.zeros(C, dtype=np.bool_)   # channels with a codebook
         self.ent_acc = z.copy()
         self.ent_n = z.copy()
+        self.spans: list[int] = []                 # channels of the finished count spans
+        self.span_counts: list[np.ndarray] = []    # and their counts (see _add_spans)
         # codebook pictures for the report: first, middle, last (channel 0)
         self.picks: dict[str, dict] = {}
         self.cur_pick: dict | None = None
         self.tail = np.zeros(1 << 19)   # about 11 s at 48 kHz
         self.tail_n = 0
         self.live = bool(ctx.live and ctx.background is not None)
+        if ctx.live:        # compiled now, not while the stream runs
+            from streamq.design.kernels import warm_up
+            warm_up()
         return None
 
     # -- codebooks -------------------------------------------------------------
-    def _flush_entropy(self, ch: int) -> None:
-        c = self.ent_counts[ch]
-        if c is None:
-            return
-        n = c.sum()
-        if n > 0:
-            p = c[c > 0] / n
-            self.ent_acc[ch] += float(n) * float(-(p * np.log2(p)).sum())
-            self.ent_n[ch] += float(n)
-        self.ent_counts[ch] = None
+    def _end_span(self, ch: int) -> None:
+        """Channel ``ch``'s codebook changes: its index counts so far make one
+        span, whose entropy :meth:`_add_spans` adds."""
+        self.spans.append(ch)
+        self.span_counts.append(self.ent_counts[ch].copy())
+        self.ent_counts[ch] = 0
 
-    def _count(self, ch: int, idx: np.ndarray) -> None:
-        n_lv = self.levels_seen or int(idx.max()) + 1
-        cnt = np.bincount(idx, minlength=n_lv)
-        if self.ent_counts[ch] is None:
-            self.ent_counts[ch] = cnt.astype(np.int64)
-        else:
-            self.ent_counts[ch][:len(cnt)] += cnt
+    def _add_spans(self) -> None:
+        """Add ``n * H`` of each finished span to its channel, spans in order,
+        where ``n`` is the span's index count and ``H`` the entropy (bits) of
+        its index frequencies ``p = counts[counts > 0] / n``, summed as
+        ``-(p * log2(p)).sum()``: the spans' ``p`` side by side, each summed alone."""
+        if not self.spans:
+            return
+        counts = np.stack(self.span_counts)
+        seen = counts > 0
+        n = counts.sum(axis=1)
+        m = seen.sum(axis=1)
+        p = counts[seen] / np.repeat(n, m)
+        plogp = p * np.log2(p)
+        at = 0
+        for ch, n_s, m_s in zip(self.spans, n.tolist(), m.tolist()):
+            if n_s > 0:
+                self.ent_acc[ch] += float(n_s) * float(-plogp[at:at + m_s].sum())
+                self.ent_n[ch] += float(n_s)
+            at += m_s
+        self.spans, self.span_counts = [], []
+
+    def _fit_counts(self, idx: np.ndarray) -> None:
+        """Widen the index counts when ``idx`` may hold an index past them."""
+        have = self.ent_counts.shape[1]
+        if have >= np.iinfo(idx.dtype).max + 1 or idx.shape[0] == 0:
+            return
+        need = int(idx.max()) + 1
+        if need > have:
+            self._add_spans()            # (spans of one width at a time)
+            wider = np.zeros((self.C, need), dtype=np.int64)
+            wider[:, :have] = self.ent_counts
+            self.ent_counts = wider
 
     def _pick_start(self, u: CodebookUpdate) -> None:
         if u.channel != 0:
@@ -271,9 +303,10 @@ class ErrorMeter(Node):
 
     def _apply(self, u: CodebookUpdate) -> None:
         ch = u.channel
-        self._flush_entropy(ch)
+        self._end_span(ch)
         self.bounds[ch] = (u.levels[0], u.levels[-1])
         self.version[ch] = u.version
+        self.counting[ch] = True
         self.side_bits += int(u.side_info_bits)
         self.updates += 1
         if self.levels_seen is None:
@@ -286,22 +319,27 @@ class ErrorMeter(Node):
 
     # -- one step --------------------------------------------------------------
     def step(self, frames, inputs) -> None:
-        ref = self.refdelay.push(inputs["reference"].block.data)
+        from streamq.design.kernels import meter_rows, window_segments
+        ref = np.ascontiguousarray(self.refdelay.push(inputs["reference"].block.data))
         pkt = inputs["input"]
-        x = pkt.block.data
+        x = np.ascontiguousarray(pkt.block.data)
         s = pkt.block.start
-        C = self.C
+        C, F = self.C, self.F
         updates = [u for u in pkt.events if isinstance(u, CodebookUpdate)]
-        idx = pkt.indices.data if pkt.indices is not None else None
+        if pkt.indices is not None:
+            idx = np.ascontiguousarray(pkt.indices.data)
+            self._fit_counts(idx)
+        else:
+            idx = np.zeros((0, C), dtype=np.uint8)
         skip = min(frames, max(0, self.d - s))   # latency pre-roll: nothing to compare yet
         n = frames - skip
-        # one row per measured sample: reference, error, overload flag per channel,
-        # and channel 0's codebook version (for the time series)
-        rows = np.empty((n, 3 * C + 1))
         if n:
-            rows[:, :C] = ref[skip:]
-            np.subtract(x[skip:], ref[skip:], out=rows[:, C:2 * C])
-            self._keep_tail(rows[:, 0])
+            self._keep_tail(ref[skip:, 0])
+        # per-frame sums of the frames this block finishes, and the version in
+        # force at each frame's last sample (channel 0), made segment by segment
+        sums = np.empty(((self.fill + n) // F, 4 * C))
+        vers = np.empty(sums.shape[0])
+        k, top = 0, 0.0
         mid = (self.total_frames or 0) // 2
         if updates:
             updates.sort(key=lambda u: u.at_sample)
@@ -317,13 +355,11 @@ class ErrorMeter(Node):
             if a2 >= b:
                 continue
             rr = ref[a2:b]
-            seg = rows[a2 - skip:b - skip]
-            seg[:, 2 * C:3 * C] = (rr < self.bounds[:, 0]) | (rr > self.bounds[:, 1])
-            seg[:, 3 * C] = -1 if self.version[0] is None else self.version[0]
-            if idx is not None:
-                for ch in range(C):
-                    if self.version[ch] is not None:
-                        self._count(ch, idx[a2:b, ch])
+            ver = -1.0 if self.version[0] is None else float(self.version[0])
+            self.fill, k, top = meter_rows(rr, x[a2:b], self.bounds, ver,
+                                           idx[a2:b] if idx.shape[0] else idx, self.counting,
+                                           self.ent_counts, self.pend, self.fill, sums, vers, k,
+                                           top)
             p = self.cur_pick
             if mid and p is not None and not p["accumulate"] and s + a2 <= mid < s + b:
                 # the codebook in force at the middle of the run: picture it so
@@ -332,24 +368,26 @@ class ErrorMeter(Node):
                 p["accumulate"] = True
             elif p is not None and p["accumulate"]:
                 plo, phi = p["range"]
-                k = ((rr[:, 0] - plo) * (200 / (phi - plo))).astype(np.int64)
-                p["counts"] += np.bincount(k[(k >= 0) & (k < 200)], minlength=200)
+                k0 = ((rr[:, 0] - plo) * (200 / (phi - plo))).astype(np.int64)
+                p["counts"] += np.bincount(k0[(k0 >= 0) & (k0 < 200)], minlength=200)
         while ui < len(updates):
             self._apply(updates[ui])
             ui += 1
+        self._add_spans()
         self.t = s + frames
         if n == 0:
             return None
-        self.peak = max(self.peak, float(np.abs(rows[:, C:2 * C]).max()))
+        self.peak = max(self.peak, float(top))
         self.m += n
-        done = self.frames_in.push(rows)
-        spec = self.spec_in.push(rows[:, :2 * C])
+        segs = np.empty((2 * C, (self.spec_pos + n) // self.N, self.N))
+        self.spec_pos = window_segments(ref[skip:], x[skip:], self.spec_win, self.spec_part,
+                                        self.spec_pos, segs)
         # live runs: frame statistics and spectra are summed on the worker, in order
         run = self.ctx.background if self.live else (lambda f, *a: f(*a))
-        if done is not None:
-            run(self._frames, done)
-        if spec is not None:
-            run(self._spectrum, spec)
+        if sums.shape[0]:
+            run(self._frames, sums, vers)
+        if segs.shape[1]:
+            run(self._spectrum, segs)
         return None
 
     def _keep_tail(self, r0: np.ndarray) -> None:
@@ -363,14 +401,19 @@ class ErrorMeter(Node):
         self.tail[:n - first] = r0[first:]
         self.tail_n += n
 
-    def _frames(self, buf: np.ndarray) -> None:
+    def _frames(self, sums: np.ndarray, frame_ver: np.ndarray) -> None:
+        """Add finished frames to the totals, segmental SNR and series rows.
+
+        Parameters
+        ----------
+        sums : ndarray, shape (K, 4C)
+            Per-frame sums (sum r^2, e^2, e^2 over overloads, overloads; see
+            :func:`streamq.design.kernels.meter_rows`), frames in order.
+        frame_ver : ndarray, shape (K,)
+            Channel 0's codebook version at each frame's last sample.
+        """
         C, F = self.C, self.F
-        K = buf.shape[0] // F
-        frame_ver = buf[F - 1:K * F:F, 3 * C]   # version in force at each frame's last sample
-        # per-frame sums (K, 4C), each frame's rows added in order (compiled), so a
-        # frame's sum does not depend on how the stream was cut into blocks
-        from streamq.design.kernels import frame_sums
-        sums = frame_sums(np.ascontiguousarray(buf[:K * F]), C, F)
+        K = sums.shape[0]
         sig, noi, ovn, ovc = sums[:, :C], sums[:, C:2 * C], sums[:, 2 * C:3 * C], sums[:, 3 * C:]
         self.sig = _seq_sum(self.sig, sig)
         self.noi = _seq_sum(self.noi, noi)
@@ -434,20 +477,29 @@ class ErrorMeter(Node):
         })
         self.win = {"sig": 0.0, "noi": 0.0, "ovc": 0.0, "seg": 0.0, "segn": 0, "frames": 0}
 
-    def _spectrum(self, buf: np.ndarray) -> None:
-        N = self.N   # Welch segments side by side (no overlap)
-        K = buf.shape[0] // N
-        view = buf.reshape(K, N, 2 * self.C).transpose(0, 2, 1)  # (K, 2C, N)
-        spec = np.abs(np.fft.rfft(view * self.spec_win, axis=-1)) ** 2
-        C = self.C
-        both = np.stack([spec[:, :C].sum(axis=1), spec[:, C:].sum(axis=1)], axis=1)  # (K, 2, f)
-        self.spec_acc = _seq_sum(self.spec_acc, both)
+    def _spectrum(self, segs: np.ndarray) -> None:
+        """Add windowed Welch segments (no overlap) to the power spectra.
+
+        Parameters
+        ----------
+        segs : ndarray, shape (2C, K, N)
+            Reference channels then error channels, one windowed segment per
+            row (see :func:`streamq.design.kernels.window_segments`).
+        """
+        C, K = self.C, segs.shape[1]
+        spec = np.abs(np.fft.rfft(segs, axis=-1))
+        np.square(spec, out=spec)                                   # (2C, K, f)
+        ref, err = spec[:C].sum(axis=0), spec[C:].sum(axis=0)       # (K, f), channels in order
+        acc = self.spec_acc
+        for k in range(K):      # segments added in order, whichever block they came in
+            acc[0] += ref[k]
+            acc[1] += err[k]
         self.spec_frames += K
 
     # -- the end -----------------------------------------------------------------
     def finish(self) -> None:
         # the last partial frame counts towards the totals, not towards segmental SNR
-        pend = self.frames_in.pending
+        pend = self.pend[:self.fill]
         if pend.shape[0]:
             C = self.C
             r, e, ov = pend[:, :C], pend[:, C:2 * C], pend[:, 2 * C:3 * C]
@@ -460,16 +512,17 @@ class ErrorMeter(Node):
             w["sig"] += float((r * r).sum())
             w["noi"] += float((e * e).sum())
             w["ovc"] += float(ov.sum())
-            self.frames_in.clear()
+            self.fill = 0
             self._row(r.shape[0] + w["frames"] * self.F)
         elif self.win["frames"]:
             self._row(self.win["frames"] * self.F)
 
     def close(self, complete: bool) -> None:
-        if not complete and (self.frames_in.fill or self.win["frames"]):
+        if not complete and (self.fill or self.win["frames"]):
             self.finish()
         for ch in range(self.C):
-            self._flush_entropy(ch)
+            self._end_span(ch)
+        self._add_spans()
         self._pick_end(self.t)
         self._picture_last()
         self._write_files()

@@ -166,17 +166,87 @@ def test_window_summary_histogram_equals_numpy_and_moments_equal_scipy(span, kin
     assert got.keys() == ref.keys()
 
 
-def test_frame_sums_equal_numpy_per_frame_sums():
-    from streamq.design.kernels import frame_sums
-    rng = np.random.default_rng(9)
-    C, F, K = 2, 960, 7
-    rows = np.concatenate([rng.standard_normal((K * F + 5, 2 * C)),
-                           (rng.random((K * F + 5, C)) < 0.1).astype(float),
-                           np.ones((K * F + 5, 1))], axis=1)
-    got = frame_sums(rows, C, F)
-    r, e, ov = rows[:K * F, :C], rows[:K * F, C:2 * C], rows[:K * F, 2 * C:3 * C]
-    want = np.concatenate([r * r, e * e, e * e * ov, ov], axis=1).reshape(K, F, 4 * C).sum(axis=1)
-    np.testing.assert_allclose(got, want, rtol=1e-12)
+def meter_rows_reference(ref, x, bounds, versions, idx, active, L, F):
+    """meter_rows' definition in plain numpy over a whole stream (``bounds`` and
+    ``versions`` per sample): per-frame sums added in row order (cumsum), the
+    rows left over, index counts and the peak error."""
+    e = x - ref
+    ov = ((ref < bounds[:, :, 0]) | (ref > bounds[:, :, 1])).astype(float)
+    rows = np.concatenate([ref, e, ov, versions[:, None]], axis=1)
+    C, K = ref.shape[1], ref.shape[0] // F
+    terms = np.concatenate([ref * ref, e * e, e * e * ov, ov], axis=1)[:K * F]
+    sums = np.cumsum(terms.reshape(K, F, 4 * C), axis=1)[:, -1]
+    vers = versions[F - 1:K * F:F]
+    counts = np.stack([np.bincount(idx[:, c], minlength=L) if active[c] else np.zeros(L, int)
+                       for c in range(C)])
+    return sums, vers, rows[K * F:], counts, np.abs(e).max()
+
+
+@pytest.mark.parametrize("channels", [1, 2, 3])
+def test_meter_rows_equals_numpy_definition_however_the_stream_is_cut(channels):
+    from streamq.design.kernels import meter_rows
+    rng = np.random.default_rng(9 + channels)
+    C, F, n, L = channels, 50, 1234, 16
+    ref = rng.standard_normal((n, C))
+    x = ref + rng.standard_normal((n, C)) * 0.1
+    idx = rng.integers(0, L, (n, C)).astype(np.uint8)
+    active = np.arange(C) != 1
+    cuts = np.unique(np.concatenate([[0, n], rng.integers(0, n, 40), [49, 50, 51, 100]]))
+    bounds = np.empty((n, C, 2))
+    versions = np.empty(n)
+    pend, fill, k, peak = np.empty((F, 3 * C + 1)), 0, 0, 0.0
+    sums, vers = np.full((n // F, 4 * C), np.nan), np.full(n // F, np.nan)
+    counts = np.zeros((C, L), dtype=np.int64)
+    for i, (a, b) in enumerate(zip(cuts[:-1], cuts[1:])):   # a codebook change at every cut
+        bd = np.sort(rng.standard_normal((C, 2)), axis=1) * 2
+        bounds[a:b], versions[a:b] = bd, float(i)
+        fill, k, peak = meter_rows(ref[a:b], x[a:b], bd, float(i), idx[a:b], active, counts,
+                                   pend, fill, sums, vers, k, peak)
+    want_sums, want_vers, want_rest, want_counts, want_peak = meter_rows_reference(
+        ref, x, bounds, versions, idx, active, L, F)
+    assert k == n // F and fill == n % F
+    np.testing.assert_array_equal(sums, want_sums)
+    np.testing.assert_array_equal(vers, want_vers)
+    np.testing.assert_array_equal(pend[:fill], want_rest)
+    np.testing.assert_array_equal(counts, want_counts)
+    assert peak == want_peak
+
+
+def test_meter_rows_counts_nothing_without_indices_and_keeps_a_nan_peak():
+    from streamq.design.kernels import meter_rows
+    ref = np.zeros((10, 2))
+    x = np.ones((10, 2))
+    x[3, 1] = np.nan
+    counts = np.zeros((2, 4), dtype=np.int64)
+    out = meter_rows(ref, x, np.zeros((2, 2)), -1.0, np.zeros((0, 2), dtype=np.uint8),
+                     np.ones(2, dtype=bool), counts, np.empty((4, 7)), 0, np.empty((2, 8)),
+                     np.empty(2), 0, 0.0)
+    assert out[:2] == (2, 2) and np.isnan(out[2])
+    assert not counts.any()
+    assert np.isnan(meter_rows(ref, ref, np.zeros((2, 2)), -1.0, np.zeros((0, 2), np.uint8),
+                               np.ones(2, dtype=bool), counts, np.empty((4, 7)), 0,
+                               np.empty((2, 8)), np.empty(2), 0, np.nan)[2])
+
+
+@pytest.mark.parametrize("channels", [1, 2])
+def test_window_segments_equal_numpy_definition_however_the_stream_is_cut(channels):
+    from streamq.design.kernels import window_segments
+    rng = np.random.default_rng(5)
+    C, N, n = channels, 64, 1000
+    ref, x = rng.standard_normal((n, C)), rng.standard_normal((n, C))
+    window = 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(N) / N)
+    cuts = np.unique(np.concatenate([[0, n], rng.integers(0, n, 30), [63, 64, 65, 128]]))
+    part, pos, got = np.empty((2 * C, N)), 0, []
+    for a, b in zip(cuts[:-1], cuts[1:]):
+        out = np.empty((2 * C, (pos + b - a) // N, N))
+        pos = window_segments(ref[a:b], x[a:b], window, part, pos, out)
+        got.append(out)
+    K = n // N
+    rows = np.concatenate([ref, x - ref], axis=1)
+    want = rows[:K * N].reshape(K, N, 2 * C).transpose(2, 0, 1) * window
+    np.testing.assert_array_equal(np.concatenate(got, axis=1), want)
+    assert pos == n - K * N
+    np.testing.assert_array_equal(part[:, :pos], rows[K * N:].T * window[:pos])
 
 
 def test_js_drift_equals_scipy_on_a_shared_grid_and_is_bounded():

@@ -113,7 +113,12 @@ def _seq_sum(acc: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """acc + rows[0] + rows[1] + ..., added strictly in order (block-size proof)."""
     if rows.shape[0] == 0:
         return acc
-    return np.cumsum(np.concatenate([acc[None], rows]), axis=0)[-1]
+    if acc.size < 64:       # a few columns: one cumsum
+        return np.cumsum(np.concatenate([acc[None], rows]), axis=0)[-1]
+    out = acc.copy()        # long rows (spectra): row by row, far faster than a cumsum
+    for row in rows:        # along the outer axis, and the same additions
+        out += row
+    return out
 
 
 def _db(num: float, den: float) -> float | None:
@@ -252,10 +257,10 @@ class ErrorMeter(Node):
         if u.channel != 0:
             return
         self._pick_end(u.at_sample)
-        lv = np.asarray(u.levels)
+        lv = np.array(u.levels)     # (copies: report() makes them lists, for the kept few)
         span = max(lv[-1] - lv[0], 1e-9)
         self.cur_pick = {"version": u.version, "at_sample": u.at_sample, "method": u.method,
-                         "thresholds": np.asarray(u.thresholds).tolist(), "levels": lv.tolist(),
+                         "thresholds": np.array(u.thresholds), "levels": lv,
                          "range": [float(lv[0] - 0.25 * span), float(lv[-1] + 0.25 * span)],
                          "counts": np.zeros(200, dtype=np.int64), "until": None,
                          "from_m": max(0, u.at_sample - self.d),
@@ -489,11 +494,8 @@ class ErrorMeter(Node):
         C, K = self.C, segs.shape[1]
         spec = np.abs(np.fft.rfft(segs, axis=-1))
         np.square(spec, out=spec)                                   # (2C, K, f)
-        ref, err = spec[:C].sum(axis=0), spec[C:].sum(axis=0)       # (K, f), channels in order
-        acc = self.spec_acc
-        for k in range(K):      # segments added in order, whichever block they came in
-            acc[0] += ref[k]
-            acc[1] += err[k]
+        sig, noi = spec[:C].sum(axis=0), spec[C:].sum(axis=0)   # (K, f), channels in order
+        self.spec_acc = np.stack([_seq_sum(self.spec_acc[0], sig), _seq_sum(self.spec_acc[1], noi)])
         self.spec_frames += K
 
     # -- the end -----------------------------------------------------------------

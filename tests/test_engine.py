@@ -212,6 +212,66 @@ def test_block_below_one_frame_is_refused(tmp_path, block):
 
 
 
+def _metered_graph(seconds: float) -> str:
+    return _drift_graph(seconds) + """
+        [nodes.enc]
+        use = "encoder"
+        input = "feed"
+        bits = 4
+
+        [nodes.dec]
+        use = "decoder"
+        input = "enc"
+
+        [nodes.noise]
+        use = "error-meter"
+        reference = "feed"
+        input = "dec"
+    """
+
+
+def test_meters_step_behind_on_their_own_thread_and_catch_up(tmp_path):
+    """An offline run steps a meter on a thread of its own (Node.runs_behind),
+    every block in order, all before finish() and the report."""
+    import threading
+    g = write_graph(tmp_path, _metered_graph(0.5))
+    built = build(parse_graph(g.read_text(), g), tmp_path / "o")
+    meter = built.nodes["noise"]
+    seen, step = [], meter.step
+    meter.step = lambda frames, ins: (seen.append((threading.current_thread().name,
+                                                   ins["input"].block.start)),
+                                      step(frames, ins))[1]
+    result = run_offline(built, block=300, handle_signals=False)
+    assert [start for _, start in seen] == list(range(0, 4000, 300))
+    assert {name for name, _ in seen} == {"streamq-noise"}
+    assert result.report["meters"]["noise"]["samples"] == 4000
+    # the same figures as the same blocks stepped in line
+    again = build(parse_graph(g.read_text(), g), tmp_path / "inline")
+    again.nodes["noise"].runs_behind = False
+    inline = run_offline(again, block=300, handle_signals=False)
+    assert inline.report["meters"] == result.report["meters"]
+
+
+def test_a_meter_failing_behind_stops_the_run_and_the_files_stay_valid(tmp_path):
+    g = write_graph(tmp_path, _metered_graph(0.5))
+    built = build(parse_graph(g.read_text(), g), tmp_path / "o")
+    meter = built.nodes["noise"]
+    step, calls = meter.step, []
+
+    def failing(frames, ins):
+        calls.append(frames)
+        if len(calls) == 3:
+            raise meter.fail(None, "cannot measure this block")
+        return step(frames, ins)
+
+    meter.step = failing
+    with pytest.raises(StreamqError, match="node 'noise': cannot measure this block"):
+        run_offline(built, block=300, handle_signals=False)
+    assert len(calls) == 3      # nothing is stepped after the failure
+    data, rate = read_audio(tmp_path / "o" / "out.wav")   # closed and valid
+    assert rate == 8000 and 600 <= data.shape[0] <= 4000
+
+
 # -- explicit state (DESIGN.md rule 3): stop half way, continue in fresh nodes ---------
 
 def _open_source(graph_file, out_dir):

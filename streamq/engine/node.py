@@ -165,6 +165,13 @@ class Node:
     role: ClassVar[str] = "node"
     #: live-only kinds (device I/O) set this; offline runs refuse them.
     live_only: ClassVar[bool] = False
+    #: an offline run may step this node on a thread of its own, blocks in order,
+    #: while the rest of the graph computes the next block. For nodes with no
+    #: output that nothing reads until the run ends (meters): ``step`` must keep
+    #: to the node's own state, and ``finish``, ``close`` and ``report`` come after
+    #: the thread has stepped every block. Blocks are never changed once emitted,
+    #: so reading them later is safe.
+    runs_behind: ClassVar[bool] = False
 
     def __init__(self, node_id: str, config: NodeConfig):
         self.id = node_id

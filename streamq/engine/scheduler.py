@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from streamq.engine.audiofile import replacing
+from streamq.engine.background import BackgroundWriter
 from streamq.engine.blocks import Packet, StreamSpec
 from streamq.engine.graph import Graph, GraphError, infer_rate
 from streamq.engine.node import Node, RunContext, SourceNode
@@ -153,14 +154,46 @@ class Interrupted(BaseException):
     """
 
 
-def _step_all(built: BuiltGraph, frames: int) -> dict[str, Packet | None]:
+def _step_all(built: BuiltGraph, frames: int,
+              behind: dict[str, BackgroundWriter] | None = None) -> dict[str, Packet | None]:
     outputs: dict[str, Packet | None] = {}
     nodes = built.graph.nodes
     for nid in built.graph.order:
         node = nodes[nid]
         ins = {f: outputs[ref] for f, ref in node.upstream().items()}
-        outputs[nid] = node.step(frames, ins)
+        if behind and nid in behind:
+            behind[nid].put((frames, ins))
+            outputs[nid] = None
+        else:
+            outputs[nid] = node.step(frames, ins)
     return outputs
+
+
+#: blocks a node that runs behind may have waiting (memory bound)
+BEHIND_QUEUE = 2
+
+
+def _start_behind(built: BuiltGraph) -> dict[str, BackgroundWriter]:
+    """Threads for the nodes that may step behind the rest of an offline run
+    (``Node.runs_behind``) and that no other node reads from."""
+    nodes = built.graph.nodes
+    read = {ref for node in nodes.values() for ref in node.upstream().values()}
+    return {nid: BackgroundWriter(lambda item, node=node: node.step(*item),
+                                  name=f"streamq-{nid}", limit=BEHIND_QUEUE)
+            for nid, node in nodes.items() if node.runs_behind and nid not in read}
+
+
+def _catch_up(behind: dict[str, BackgroundWriter]) -> None:
+    """Wait until every node that runs behind has stepped all its blocks; raise
+    the first failure of one (after all have caught up)."""
+    failure = None
+    for worker in behind.values():
+        try:
+            worker.close()
+        except BaseException as exc:
+            failure = failure or exc
+    if failure is not None:
+        raise failure
 
 
 def run_offline(built: BuiltGraph, *, block: int | None = None,
@@ -197,6 +230,7 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
                 old_handlers[sig] = signal.signal(sig, on_signal)
             except ValueError:  # not the main thread
                 pass
+    behind = _start_behind(built)
     try:
         try:
             if step < 1:  # inside the try, so the opened nodes get closed
@@ -205,10 +239,11 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
                 if stop_requested:
                     raise Interrupted(stop_requested[0])
                 n = min(step, total - pos)
-                _step_all(built, n)
+                _step_all(built, n, behind)
                 pos += n
                 if progress:
                     progress(pos, total)
+            _catch_up(behind)
             for nid in built.graph.order:
                 built.graph.nodes[nid].finish()
             complete = True
@@ -222,6 +257,13 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
                 signal.signal(sig, h)
     finally:
         closing_error = None
+        try:   # (after an error or a stop too: every stepped block is measured)
+            _catch_up(behind)
+        except StreamqError as exc:
+            closing_error = exc
+        except BaseException:
+            if error is None:
+                raise
         for nid in built.graph.order:
             try:
                 built.graph.nodes[nid].close(complete)

@@ -137,6 +137,7 @@ class ErrorMeter(Node):
     Config = MeterConfig
     inputs = ("reference", "input")
     role = "meter"
+    runs_behind = True
 
     def open(self, specs, ctx) -> StreamSpec | None:
         ref, inp = specs["reference"], specs["input"]

@@ -522,20 +522,6 @@ HISTOGRAM_TOL = 1e-7
 HISTOGRAM_MAX_ITER = 1000
 
 
-def lloyd_codebook(centers, weights, count: int, init=None) -> Codebook:
-    """The codebook of :func:`lloyd_max_histogram` (default stopping rule),
-    without its report and without checking the arguments.
-
-    For the streaming encoder's per-hop designs on the estimator's histograms:
-    ``centers`` and ``weights`` contiguous float64, sorted, finite,
-    non-negative with a positive total; ``count`` a valid level count; ``init``
-    None or a Codebook of ``count`` levels.
-    """
-    pre = histogram_prefix(centers, weights, validate=False)
-    lv, _, _, _ = _design_levels(pre, count, init, HISTOGRAM_TOL, HISTOGRAM_MAX_ITER, False)
-    return _levels_codebook(lv, count, 0)
-
-
 def lloyd_max_histogram(
     centers=None,
     weights=None,

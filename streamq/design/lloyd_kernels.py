@@ -14,7 +14,12 @@ each step is one compiled call:
 * :func:`midpoint_thresholds`: the thresholds of a codebook made from levels,
   with the checks :class:`streamq.design.codebook.Codebook` would make;
 * :func:`grid_levels`: :func:`streamq.engine.sideinfo.round_levels` and
-  :func:`streamq.engine.sideinfo.level_bits` in one pass.
+  :func:`streamq.engine.sideinfo.level_bits` in one pass;
+* :func:`design_window`: the encoder's whole design on a window in one call
+  (the Python calls between the steps above cost as much as the steps): the
+  occupied bins, the exact codebook of :func:`streamq.nodes.coding._exact_codebook`,
+  the warm-start rule of :func:`streamq.nodes.coding.warm_start`, then the
+  kernels above in turn.
 
 The numpy functions named are the definitions; the tests check each kernel
 against its definition: exactly where the arithmetic is done in the same order,
@@ -420,6 +425,165 @@ def grid_levels(levels, grid_bits):  # pragma: no cover - compiled
     return out, grid_bits + _K_BITS + best
 
 
+# what design_window did with a window
+EMPTY = 0       # no occupied bin: no design
+DONE = 1        # the codebook is made (levels, thresholds, side bits)
+COLD = 2        # the caller designs, from its method's cold start
+WARM = 3        # the caller designs, from the levels given
+UNCHECKED = 4   # exact levels that do not make a valid codebook (the caller's check says why)
+
+#: ``init`` of :func:`design_window` without a codebook in force (read-only, as a
+#: Codebook's levels are: one compiled form serves both)
+NO_LEVELS = np.empty(0)
+NO_LEVELS.setflags(write=False)
+
+
+@njit(cache=True, nogil=True)
+def _fits_window(levels, low, high, count):  # pragma: no cover - compiled
+    """Whether ``levels`` may warm-start a design on a window whose occupied
+    bin centers span ``[low, high]``: the rule of
+    :func:`streamq.nodes.coding.warm_start` (its definition)."""
+    L = levels.shape[0]
+    if L < count:
+        return False
+    if levels[0] < low or levels[L - 1] > high:
+        return False
+    distinct = 1
+    for i in range(1, L):
+        if levels[i] > levels[i - 1]:
+            distinct += 1
+    return distinct >= count
+
+
+@njit(cache=True, nogil=True)
+def _exact_levels(centers, counts, occupied, count):  # pragma: no cover - compiled
+    """A level on each occupied bin center, the ``count - occupied`` spare ones
+    outside the extremes one bin width apart (half below, the rest above): the
+    levels of :func:`streamq.nodes.coding._exact_codebook` (its definition)."""
+    n = centers.shape[0]
+    spare = count - occupied
+    width = (centers[n - 1] - centers[0]) / max(n - 1, 1)
+    if width == 0.0:
+        width = 1e-6
+    below = spare // 2
+    above = spare - below
+    lv = np.empty(count)
+    k = below
+    for i in range(n):
+        if counts[i] > 0:
+            lv[k] = centers[i]
+            k += 1
+    for j in range(below):
+        lv[j] = lv[below] - width * float(below - j)
+    top = lv[k - 1]
+    for j in range(1, above + 1):
+        lv[k - 1 + j] = top + width * float(j)
+    return lv
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def design_window(centers, counts, count, init, mode, grid_bits, tol,
+                  max_iter):  # pragma: no cover - compiled
+    """The streaming encoder's design on one window's histogram, in one call.
+
+    Steps, each the compiled form of a numpy definition tested equal to it:
+    the occupied bins; with ``mode >= 1``, the exact codebook of a window
+    with at most ``count`` occupied bins
+    (:func:`streamq.nodes.coding._exact_codebook`); the warm-start rule
+    (:func:`streamq.nodes.coding.warm_start`); with ``mode == 2``,
+    Lloyd-Max: :func:`prefix_sums`, :func:`cube_root_start` or the levels
+    ``init``, :func:`lloyd_iterate`, :func:`midpoint_thresholds` (the codebook
+    of :func:`streamq.design.lloyd.lloyd_max_histogram`); then
+    :func:`grid_levels` (none when ``grid_bits`` is 0).
+
+    Parameters
+    ----------
+    centers, counts : numpy.ndarray
+        The window's histogram (sorted float64 centers, non-negative weights).
+    count : int
+        Level count.
+    init : numpy.ndarray
+        Levels of the codebook in force (empty for none).
+    mode : int
+        0: only the occupied bins and the warm-start rule; 1: also the exact
+        codebook (method ``optimal``); 2: also Lloyd-Max.
+    grid_bits : int
+        Side-information grid (0: levels stay as designed, no side bits).
+    tol, max_iter
+        Stopping rule of :func:`lloyd_iterate`.
+
+    Returns
+    -------
+    (status, levels, thresholds, bits)
+        ``status`` :data:`DONE` with the codebook and its side bits;
+        :data:`EMPTY` for a window without data; :data:`COLD` or
+        :data:`WARM` when the caller must design (``mode < 2``, or the rare
+        Lloyd cases left to the general route: one value, cells that stay
+        empty, levels that make no valid codebook); :data:`UNCHECKED` with
+        exact levels that make no valid codebook.
+
+    References
+    ----------
+    .. [1] S. P. Lloyd, "Least squares quantization in PCM", IEEE Trans.
+       Information Theory 28(2), 1982.
+    .. [2] J. Max, "Quantizing for minimum distortion", IRE Trans. Information
+       Theory 6(1), 1960.
+    """
+    n = counts.shape[0]
+    if centers.shape[0] != n:
+        return COLD, np.empty(0), np.empty(0), 0     # the general route says what is wrong
+    occupied = 0
+    first = last = 0
+    for i in range(n):
+        if counts[i] > 0:
+            if occupied == 0:
+                first = i
+            last = i
+            occupied += 1
+    if occupied == 0:
+        return EMPTY, np.empty(0), np.empty(0), 0
+    if mode >= 1 and occupied <= count:
+        lv = _exact_levels(centers, counts, occupied, count)
+        th, ok = midpoint_thresholds(lv, False)
+        if not ok:
+            return UNCHECKED, lv, np.empty(0), 0
+        return _on_grid(lv, th, grid_bits, UNCHECKED)
+    warm = _fits_window(init, centers[first], centers[last], count)
+    retry = WARM if warm else COLD
+    if mode < 2 or (warm and init.shape[0] != count):
+        return retry, np.empty(0), np.empty(0), 0
+    shifted, ref, p01, total2, _, single, _ = prefix_sums(centers, counts)
+    if single:
+        return retry, np.empty(0), np.empty(0), 0
+    if warm:
+        y = np.empty(count)
+        for i in range(count):
+            y[i] = init[i] - ref
+    else:
+        y = cube_root_start(shifted, p01[:, 0], count)
+    y, _, _, stuck, _, _ = lloyd_iterate(shifted, p01, total2, y, tol, max_iter, False)
+    if stuck:
+        return retry, np.empty(0), np.empty(0), 0
+    for i in range(count):
+        y[i] += ref
+    th, ok = midpoint_thresholds(y, True)
+    if not ok:
+        return retry, np.empty(0), np.empty(0), 0
+    return _on_grid(y, th, grid_bits, retry)
+
+
+@njit(cache=True, nogil=True)
+def _on_grid(levels, thresholds, grid_bits, otherwise):  # pragma: no cover - compiled
+    """(DONE, levels on the grid, thresholds, bits), or ``otherwise`` with the
+    levels as designed when rounding would put them out of order."""
+    if grid_bits == 0:
+        return DONE, levels, thresholds, 0
+    rounded, bits = grid_levels(levels, grid_bits)
+    if bits < 0:
+        return otherwise, levels, np.empty(0), 0
+    return DONE, rounded, thresholds, bits
+
+
 def warm_up() -> None:
     """Compile (or load from the disk cache) every kernel for the array types
     the design path passes: contiguous float64 histograms and levels."""
@@ -431,3 +595,7 @@ def warm_up() -> None:
     lloyd_iterate(shifted, p01, total2, np.array([-9.0, -8.0, 0.0, 0.5]), 0.0, 5, True)
     midpoint_thresholds(y, True)
     grid_levels(y, 16)
+    levels = np.array([-1.0, 0.0, 1.0])
+    levels.setflags(write=False)     # as a Codebook holds them
+    for init in (levels, NO_LEVELS):
+        design_window(c, w, 3, init, 2, 16, 1e-7, 5)

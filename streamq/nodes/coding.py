@@ -49,31 +49,75 @@ def model_codebook(method: str, n_levels: int, model: str, mean: float, std: flo
     return pad_levels(d.Codebook(levels=lv * std + mean, thresholds=th * std + mean), n_levels)
 
 
+def window_codebook(method: str, n_levels: int, centers: np.ndarray, counts: np.ndarray, init,
+                    opts: dict[str, Any], grid_bits: int | None, standard: bool):
+    """The finished codebook of ``method`` for a window's histogram, on the
+    side-information grid, with its cost in bits; None when the window is empty.
+
+    One compiled call (:func:`streamq.design.lloyd_kernels.design_window`)
+    finds the occupied bins, makes the exact codebook of a window with no more
+    occupied bins than levels (``lloyd-max``, ``optimal``), applies the
+    warm-start rule (:func:`warm_start`) and, for ``lloyd-max``, designs and
+    puts the levels on the grid. Other methods, and the rare Lloyd-Max
+    windows it leaves to the general route (one value, cells that stay empty),
+    are designed by :func:`histogram_codebook`.
+
+    Parameters
+    ----------
+    method : str
+        Design method.
+    n_levels : int
+        Level count.
+    centers, counts : numpy.ndarray
+        The window's histogram.
+    init : Codebook or None
+        The newest design of the channel (the warm start, if it fits).
+    opts : dict
+        The encoder's design options.
+    grid_bits : int or None
+        Side-information grid (see :func:`finish_levels`).
+    standard : bool
+        A standard table (no side information).
+
+    Returns
+    -------
+    (Codebook, int) or None
+    """
+    from streamq.design import lloyd_kernels as K
+    from streamq.design.lloyd import HISTOGRAM_MAX_ITER, HISTOGRAM_TOL
+    mode = {"lloyd-max": 2, "optimal": 1}.get(method, 0)
+    grid = 0 if standard or grid_bits is None else grid_bits
+    status, levels, thresholds, bits = K.design_window(
+        np.ascontiguousarray(centers, dtype=np.float64),
+        np.ascontiguousarray(counts, dtype=np.float64), n_levels,
+        K.NO_LEVELS if init is None else init.levels, mode, grid, HISTOGRAM_TOL,
+        HISTOGRAM_MAX_ITER)
+    if status == K.DONE:
+        return _design().Codebook._trusted(levels, thresholds), bits
+    if status == K.EMPTY:
+        return None
+    if status == K.UNCHECKED:
+        cb = _design().Codebook(levels=levels)
+    else:
+        cb = histogram_codebook(method, n_levels, centers, counts,
+                                init if status == K.WARM else None, opts)
+    return finish_levels(cb, grid_bits, standard)
+
+
 def histogram_codebook(method: str, n_levels: int, centers: np.ndarray, counts: np.ndarray,
-                       init, opts: dict[str, Any], occupied: np.ndarray | None = None):
-    """The codebook of ``method`` for a window's histogram (``occupied``: the
-    indices of its occupied bins, if already at hand)."""
-    d = _design()
-    if method in ("lloyd-max", "optimal"):
-        if occupied is None:
-            occupied = np.flatnonzero(counts > 0)
-        if 0 < occupied.size <= n_levels:
-            # no more distinct values than levels: a level on each is exact (zero
-            # error); the spare levels spread out beyond the extremes
-            return _exact_codebook(d, centers[occupied], centers, n_levels)
-    if method == "lloyd-max":
-        # the estimator's arrays need no checks and the encoder no report: the lean route
-        from streamq.design.lloyd import lloyd_codebook
-        return lloyd_codebook(centers, counts, n_levels, init)
-    cb, _ = d.design(method, n_levels, centers=centers, weights=counts, init=init,
-                     **_opts(method, opts))
+                       init, opts: dict[str, Any]):
+    """The codebook of ``method`` for a histogram, by the general design route
+    (:func:`streamq.design.design`), padded to ``n_levels``."""
+    cb, _ = _design().design(method, n_levels, centers=centers, weights=counts, init=init,
+                             **_opts(method, opts))
     return pad_levels(cb, n_levels)
 
 
 def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int,
                occupied: np.ndarray | None = None):
     """The codebook in force as the starting point of a design on a window, or
-    None for the method's cold start.
+    None for the method's cold start. The definition of the rule that
+    :func:`window_codebook` applies compiled (tested equal).
 
     Levels are counted without padded duplicates (see :func:`pad_levels`) or
     levels merged by the side-information grid. The codebook is used only if
@@ -134,6 +178,9 @@ def pad_levels(cb, n_levels: int):
 
 
 def _exact_codebook(d, occupied: np.ndarray, centers: np.ndarray, n_levels: int):
+    """A level on each occupied value (zero error), the spare levels spread out
+    beyond the extremes, a bin width apart. The definition of the exact
+    codebook that :func:`window_codebook` makes compiled (tested equal)."""
     spare = n_levels - occupied.size
     width = (centers[-1] - centers[0]) / max(len(centers) - 1, 1) or 1e-6
     below = spare // 2

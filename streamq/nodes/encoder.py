@@ -54,12 +54,8 @@ def design_job(snap, init, recipe: dict):
         cb = coding.model_codebook(recipe["method"], L, model, m["mean"], m["std"], m.get("shape"),
                                    opts)
     else:
-        occupied = np.flatnonzero(snap.counts > 0)   # (counts are non-negative)
-        if occupied.size == 0:
-            return None
-        init = coding.warm_start(init, snap.centers, snap.counts, L, occupied)
-        cb = coding.histogram_codebook(recipe["method"], L, snap.centers, snap.counts, init, opts,
-                                       occupied)
+        return coding.window_codebook(recipe["method"], L, snap.centers, snap.counts, init, opts,
+                                      recipe["grid_bits"], recipe["standard"])
     return coding.finish_levels(cb, recipe["grid_bits"], recipe["standard"])
 
 

@@ -9,6 +9,8 @@ integer code lengths) exactly.
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 
@@ -16,6 +18,7 @@ from streamq.design import Codebook, lloyd_max_histogram
 from streamq.design import lloyd as ll
 from streamq.design import lloyd_kernels as K
 from streamq.engine.sideinfo import level_bits, round_levels
+from streamq.errors import StreamqError
 
 RTOL = 1e-12
 
@@ -164,16 +167,78 @@ def _numpy_prefix_args(c, w):
     return cs, ref, p01, total2, power, 1 if single else -1, total
 
 
-def test_lloyd_codebook_is_the_public_design_without_report():
-    for name, c, w in HISTOGRAMS:
-        for count in (3, 64):
-            want, _ = lloyd_max_histogram(c, w, count)
-            got = ll.lloyd_codebook(c, w, count)
-            np.testing.assert_array_equal(got.levels, want.levels)
-            np.testing.assert_array_equal(got.thresholds, want.thresholds)
-            warm = lloyd_max_histogram(c, w, count, init=want)[0]
-            np.testing.assert_array_equal(ll.lloyd_codebook(c, w, count, want).levels,
-                                          warm.levels)
+def _window_reference(method, c, w, count, init, grid_bits):
+    """What :func:`streamq.nodes.coding.window_codebook` computes, composed of
+    the numpy definitions: the occupied bins, the warm-start rule, the exact
+    codebook or the public design, the side-information code."""
+    from streamq import design as d
+    from streamq.nodes import coding
+    occupied = np.flatnonzero(w > 0)
+    if occupied.size == 0:
+        return None
+    warm = coding.warm_start(init, c, w, count, occupied)
+    if method in ("lloyd-max", "optimal") and occupied.size <= count:
+        cb = coding._exact_codebook(d, c[occupied], c, count)
+    else:
+        cb, _ = d.design(method, count, centers=c, weights=w, init=warm)
+    levels = round_levels(cb.levels, grid_bits)
+    return levels, cb.thresholds, level_bits(levels, grid_bits), warm
+
+
+def _inits(c, w, count):
+    """No codebook, one that fits the window, one too wide, one collapsed."""
+    occupied = c[w > 0]
+    lo, hi = occupied[0], occupied[-1]
+    fits = Codebook(levels=np.linspace(lo, hi, count)) if hi > lo else None
+    wide = Codebook(levels=np.linspace(lo - 1.0, hi + 1.0, count))
+    lv = np.linspace(lo, hi, count)
+    lv[1:count // 2] = lv[0]
+    collapsed = Codebook(levels=lv, thresholds=np.r_[lv[:-1] + np.arange(1, count) * 1e-9 * (hi - lo)])\
+        if hi > lo and count > 3 else None
+    return [None, fits, wide, collapsed]
+
+
+@pytest.mark.parametrize("count", [3, 20, 64])
+@pytest.mark.parametrize("name,c,w", HISTOGRAMS + [("empty", np.linspace(-1, 1, 9), np.zeros(9))],
+                         ids=IDS + ["empty"])
+def test_design_window_equals_the_numpy_composition(name, c, w, count):
+    """The encoder's one-call design (exact windows, warm-start rule, Lloyd-Max,
+    side-information grid), bit for bit, and the statuses it hands back for
+    the other methods' designs."""
+    from streamq.nodes import coding
+    for init in _inits(c, w, count) if w.sum() > 0 else [None]:
+        try:
+            want = _window_reference("lloyd-max", c, w, count, init, 16)
+        except StreamqError as exc:   # equal centers of occupied bins: no exact codebook
+            with pytest.raises(StreamqError, match=re.escape(str(exc))):
+                coding.window_codebook("lloyd-max", count, c, w, init, {}, 16, False)
+            continue
+        got = coding.window_codebook("lloyd-max", count, c, w, init, {}, 16, False)
+        if want is None:
+            assert got is None
+            continue
+        np.testing.assert_array_equal(got[0].levels, want[0])
+        np.testing.assert_array_equal(got[0].thresholds, want[1])
+        assert got[1] == want[2]
+        lv = K.NO_LEVELS if init is None else init.levels
+        status = K.design_window(c, w, count, lv, 2, 16, ll.HISTOGRAM_TOL, ll.HISTOGRAM_MAX_ITER)[0]
+        if status != K.DONE:          # the rare route: one value or cells that stay empty
+            assert status == (K.WARM if want[3] is not None else K.COLD)
+            pre = ll.histogram_prefix(c, w)
+            y0 = ll._initial_levels(pre, count, want[3])
+            assert pre.occupied == 1 or ll._lloyd_run(pre, y0, ll.HISTOGRAM_TOL,
+                                                      ll.HISTOGRAM_MAX_ITER, False)[4] is not None
+        # the other methods: the exact codebook (optimal) or the warm-start decision
+        n_occupied = np.count_nonzero(w > 0)
+        for mode in (0, 1):
+            status, levels, thresholds, bits = K.design_window(c, w, count, lv, mode, 16, 0.0, 0)
+            if mode == 1 and n_occupied <= count:
+                assert status == K.DONE
+                np.testing.assert_array_equal(levels, want[0])
+                np.testing.assert_array_equal(thresholds, want[1])
+                assert bits == want[2]
+            else:
+                assert status == (K.WARM if want[3] is not None else K.COLD)
 
 
 def test_midpoint_thresholds_equal_numpy_and_flag_valid_codebooks():

@@ -189,24 +189,29 @@ def _first_not_below(a, lo, hi, v):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def _doubled_bound(shifted, t2, pos):  # pragma: no cover - compiled
-    """``numpy.searchsorted(2 * shifted, t2, side="left")`` for sorted ``shifted``,
-    searched from the hint ``pos`` (the bound of the threshold below): a few
-    steps up, then a binary search, so that sorted thresholds cost little more
-    than a merge of the two lists (NaN sorts last)."""
+def _cell_bounds(shifted, y, b):  # pragma: no cover - compiled
+    """Fill ``b[1:L]`` with ``numpy.searchsorted(2 * shifted, y[:-1] + y[1:], side="left")``
+    (the doubled thresholds among the doubled sorted centers; exact; NaN sorts
+    last). Thresholds in order, the usual case, are merged with the centers in
+    one forward walk; one below its predecessor's bound is binary-searched."""
     n = shifted.shape[0]
-    if t2 != t2:
-        return n
+    pos = 0
+    for i in range(1, y.shape[0]):
+        t2 = y[i - 1] + y[i]
+        if t2 != t2:
+            pos = n
+        elif pos > 0 and not shifted[pos - 1] * 2.0 < t2:
+            pos = _first_not_below_doubled(shifted, pos - 1, t2)
+        else:
+            while pos < n and shifted[pos] * 2.0 < t2:
+                pos += 1
+        b[i] = pos
+
+
+@njit(cache=True, nogil=True)
+def _first_not_below_doubled(shifted, hi, t2):  # pragma: no cover - compiled
+    """``numpy.searchsorted(2 * shifted[:hi], t2, side="left")`` for a number ``t2``."""
     lo = 0
-    hi = n
-    if pos > 0 and not shifted[pos - 1] * 2.0 < t2:
-        hi = pos - 1        # below the hint (thresholds out of order)
-    else:
-        for _ in range(8):
-            if pos == n or not shifted[pos] * 2.0 < t2:
-                return pos
-            pos += 1
-        lo = pos
     while lo < hi:
         mid = (lo + hi) >> 1
         if shifted[mid] * 2.0 < t2:
@@ -309,8 +314,7 @@ def lloyd_iterate(shifted, p01, total2, y0, tol, max_iter, record):  # pragma: n
     it = 0
     for it in range(1, max_iter + 1):
         # cell bounds: doubled thresholds searched among doubled centers (exact)
-        for i in range(1, L):
-            b[i] = _doubled_bound(shifted, y[i - 1] + y[i], b[i - 1])
+        _cell_bounds(shifted, y, b)
         dot = 0.0
         smin = math.inf
         for i in range(L):
@@ -524,10 +528,9 @@ def design_window(centers, counts, count, init, mode, grid_bits, tol,
 
     References
     ----------
-    .. [1] S. P. Lloyd, "Least squares quantization in PCM", IEEE Trans.
-       Information Theory 28(2), 1982.
-    .. [2] J. Max, "Quantizing for minimum distortion", IRE Trans. Information
-       Theory 6(1), 1960.
+    The design is Lloyd's iteration (Lloyd, IEEE Trans. Information Theory
+    28(2), 1982; Max, IRE Trans. Information Theory 6(1), 1960): see the
+    module's references and :func:`streamq.design.lloyd.lloyd_max_histogram`.
     """
     n = counts.shape[0]
     if centers.shape[0] != n:

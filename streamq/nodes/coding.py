@@ -49,6 +49,20 @@ def model_codebook(method: str, n_levels: int, model: str, mean: float, std: flo
     return pad_levels(d.Codebook(levels=lv * std + mean, thresholds=th * std + mean), n_levels)
 
 
+#: what design_window does beyond the warm-start rule: 1 the exact codebook, 2 also Lloyd-Max
+_WINDOW_MODES = {"optimal": 1, "lloyd-max": 2}
+
+
+@lru_cache(maxsize=1)
+def _window_kernel():
+    """design_window's module and the histogram designs' stopping rule (loaded
+    on first use: the design library loads lazily; looked up once, as the
+    imports cost a microsecond a design)."""
+    from streamq.design import lloyd_kernels
+    from streamq.design.lloyd import HISTOGRAM_MAX_ITER, HISTOGRAM_TOL
+    return lloyd_kernels, HISTOGRAM_TOL, HISTOGRAM_MAX_ITER
+
+
 def window_codebook(method: str, n_levels: int, centers: np.ndarray, counts: np.ndarray, init,
                     opts: dict[str, Any], grid_bits: int | None, standard: bool):
     """The finished codebook of ``method`` for a window's histogram, on the
@@ -83,15 +97,12 @@ def window_codebook(method: str, n_levels: int, centers: np.ndarray, counts: np.
     -------
     (Codebook, int) or None
     """
-    from streamq.design import lloyd_kernels as K
-    from streamq.design.lloyd import HISTOGRAM_MAX_ITER, HISTOGRAM_TOL
-    mode = {"lloyd-max": 2, "optimal": 1}.get(method, 0)
-    grid = 0 if standard or grid_bits is None else grid_bits
+    K, tol, max_iter = _window_kernel()
     status, levels, thresholds, bits = K.design_window(
         np.ascontiguousarray(centers, dtype=np.float64),
         np.ascontiguousarray(counts, dtype=np.float64), n_levels,
-        K.NO_LEVELS if init is None else init.levels, mode, grid, HISTOGRAM_TOL,
-        HISTOGRAM_MAX_ITER)
+        K.NO_LEVELS if init is None else init.levels, _WINDOW_MODES.get(method, 0),
+        0 if standard or grid_bits is None else grid_bits, tol, max_iter)
     if status == K.DONE:
         return _design().Codebook._trusted(levels, thresholds), bits
     if status == K.EMPTY:

@@ -108,6 +108,23 @@ def test_interp_walk_equals_numpy_interp():
         np.testing.assert_array_equal(K._interp_sorted(x, xp, fp), np.interp(x, xp, fp))
 
 
+def test_cell_bounds_equal_searchsorted_on_doubled_centers():
+    """Sorted, unsorted and NaN thresholds, ties among the centers, and
+    thresholds beyond both ends."""
+    rng = np.random.default_rng(3)
+    for _ in range(300):
+        n = int(rng.integers(1, 200))
+        shifted = np.sort(np.round(rng.standard_normal(n), int(rng.integers(0, 3))))
+        y = np.sort(rng.standard_normal(int(rng.integers(2, 60))) * 2)
+        if rng.random() < 0.3:                       # out of order
+            y[rng.integers(y.size)] = rng.standard_normal() * 3
+        if rng.random() < 0.1:
+            y[rng.integers(y.size)] = np.nan
+        b = np.zeros(y.size + 1, dtype=np.intp)
+        K._cell_bounds(shifted, y, b)
+        np.testing.assert_array_equal(b[1:-1], np.searchsorted(2 * shifted, y[:-1] + y[1:]))
+
+
 def _starts(pre, count, rng):
     """A cold start, a random warm start and one far too wide (empty cells)."""
     s = _span(pre.shifted)

@@ -35,7 +35,6 @@ import math
 
 import numpy as np
 import scipy.special as sc
-import scipy.stats as st
 
 from streamq.errors import StreamqError
 
@@ -43,6 +42,37 @@ __all__ = ["PdfModel", "pdf_model", "PDF_NAMES", "pdf_histogram"]
 
 _SQRT2 = math.sqrt(2.0)
 _SQRT3 = math.sqrt(3.0)
+
+
+def _family_ppf(family: str, q: np.ndarray, shape: float | None) -> np.ndarray:
+    """Standard quantiles (0 < q < 1) of the reference families, by the same
+    formulas scipy.stats uses for norm, laplace, gennorm, dgamma and uniform
+    (so the results equal scipy.stats's bit for bit; the tests check it),
+    without importing scipy.stats (tens of megabytes) into every run."""
+    if family == "norm":
+        return sc.ndtri(q)
+    if family == "laplace":
+        return np.where(q > 0.5, -np.log(2 * (1 - q)), np.log(2 * q))
+    if family == "gennorm":
+        c = np.sign(q - 0.5)
+        return c * sc.gammainccinv(1.0 / shape, (1.0 + c) - 2.0 * c * q) ** (1.0 / shape)
+    if family == "dgamma":
+        return np.where(q > 0.5, sc.gammaincinv(shape, 2 * q - 1), -sc.gammainccinv(shape, 2 * q))
+    return q   # uniform on [0, 1]
+
+
+def _quantiles(family: str, q, shape: float | None = None, scale: float = 1.0,
+               loc: float = 0.0):
+    """``scipy.stats.<family>(shape, loc=loc, scale=scale).ppf(q)``: the ends
+    q = 0 and 1 give the support's ends, q outside [0, 1] or NaN gives NaN."""
+    q = np.asarray(q, dtype=np.float64)
+    out = np.full(q.shape, np.nan)
+    low, high = (0.0, 1.0) if family == "uniform" else (-np.inf, np.inf)
+    out[q == 0] = low * scale + loc
+    out[q == 1] = high * scale + loc
+    inside = (0 < q) & (q < 1)
+    out[inside] = _family_ppf(family, q[inside], shape) * scale + loc
+    return out[()] if out.ndim == 0 else out
 
 
 class PdfModel:
@@ -77,12 +107,12 @@ class PdfModel:
         """Upper-tail moments U_k(z) = int_z^inf u^k p(u) du for z >= 0."""
         raise NotImplementedError
 
-    def _dist0(self):  # pragma: no cover - abstract
-        """scipy.stats frozen distribution of Z."""
+    def _ppf0(self, q):  # pragma: no cover - abstract
+        """Quantiles of Z (see :func:`_quantiles`)."""
         raise NotImplementedError
 
-    def _cube_root_dist0(self):  # pragma: no cover - abstract
-        """scipy.stats frozen distribution with density proportional to p_Z**(1/3)."""
+    def _cube_root_ppf0(self, q):  # pragma: no cover - abstract
+        """Quantiles of the density proportional to p_Z**(1/3)."""
         raise NotImplementedError
 
     def _cube_root_integral0(self) -> float:  # pragma: no cover - abstract
@@ -146,7 +176,7 @@ class PdfModel:
 
     def ppf(self, q):
         """Quantile function (inverse of :meth:`cdf`)."""
-        return self.mean + self.std * self._dist0().ppf(np.asarray(q, dtype=np.float64))
+        return self.mean + self.std * self._ppf0(np.asarray(q, dtype=np.float64))
 
     def partial_moments(self, a, b):
         """Integrals of ``x**k p(x)`` over ``[a, b)`` for k = 0, 1, 2.
@@ -193,9 +223,7 @@ class PdfModel:
         These are the thresholds (at ``q = i/L``) and levels (at
         ``q = (i + 1/2)/L``) of the asymptotically optimal compander.
         """
-        return self.mean + self.std * self._cube_root_dist0().ppf(
-            np.asarray(q, dtype=np.float64)
-        )
+        return self.mean + self.std * self._cube_root_ppf0(np.asarray(q, dtype=np.float64))
 
     def cube_root_integral(self) -> float:
         """Integral of ``p(x)**(1/3)`` over the real line (scales as std**(2/3))."""
@@ -256,11 +284,11 @@ class _GeneralizedGaussian(PdfModel):
             out.append(coef * sc.gammaincc(p, w))
         return out
 
-    def _dist0(self):
-        return st.gennorm(self._beta, scale=self._alpha)
+    def _ppf0(self, q):
+        return _quantiles("gennorm", q, self._beta, self._alpha)
 
-    def _cube_root_dist0(self):
-        return st.gennorm(self._beta, scale=self._alpha * 3.0 ** (1.0 / self._beta))
+    def _cube_root_ppf0(self, q):
+        return _quantiles("gennorm", q, self._beta, self._alpha * 3.0 ** (1.0 / self._beta))
 
     def _cube_root_integral0(self):
         return 3.0 ** (1.0 / self._beta) * self._norm ** (-2.0 / 3.0)
@@ -283,11 +311,11 @@ class _Gaussian(_GeneralizedGaussian):
             u2 = _fix_inf(z, u0 + z * phi)
         return u0, phi, u2
 
-    def _dist0(self):
-        return st.norm()
+    def _ppf0(self, q):
+        return _quantiles("norm", q)
 
-    def _cube_root_dist0(self):
-        return st.norm(scale=_SQRT3)
+    def _cube_root_ppf0(self, q):
+        return _quantiles("norm", q, scale=_SQRT3)
 
 
 class _Laplacian(_GeneralizedGaussian):
@@ -308,11 +336,11 @@ class _Laplacian(_GeneralizedGaussian):
             u2 = _fix_inf(z, e * (z * z + 2.0 * b * z + 2.0 * b * b))
         return e, u1, u2
 
-    def _dist0(self):
-        return st.laplace(scale=1.0 / _SQRT2)
+    def _ppf0(self, q):
+        return _quantiles("laplace", q, scale=1.0 / _SQRT2)
 
-    def _cube_root_dist0(self):
-        return st.laplace(scale=3.0 / _SQRT2)
+    def _cube_root_ppf0(self, q):
+        return _quantiles("laplace", q, scale=3.0 / _SQRT2)
 
 
 class _Gamma(PdfModel):
@@ -347,11 +375,11 @@ class _Gamma(PdfModel):
             out.append(coef * sc.gammaincc(s + k, w))
         return out
 
-    def _dist0(self):
-        return st.dgamma(self._s, scale=self._theta)
+    def _ppf0(self, q):
+        return _quantiles("dgamma", q, self._s, self._theta)
 
-    def _cube_root_dist0(self):
-        return st.dgamma((self._s + 2.0) / 3.0, scale=3.0 * self._theta)
+    def _cube_root_ppf0(self, q):
+        return _quantiles("dgamma", q, (self._s + 2.0) / 3.0, 3.0 * self._theta)
 
     def _cube_root_integral0(self):
         s2 = (self._s + 2.0) / 3.0
@@ -380,11 +408,11 @@ class _Uniform(PdfModel):
         zc = np.minimum(z, h)
         return (h - zc) / (2 * h), (h * h - zc * zc) / (4 * h), (h**3 - zc**3) / (6 * h)
 
-    def _dist0(self):
-        return st.uniform(loc=-_SQRT3, scale=2 * _SQRT3)
+    def _ppf0(self, q):
+        return _quantiles("uniform", q, scale=2 * _SQRT3, loc=-_SQRT3)
 
-    def _cube_root_dist0(self):
-        return self._dist0()
+    def _cube_root_ppf0(self, q):
+        return self._ppf0(q)
 
     def _cube_root_integral0(self):
         return (2.0 * _SQRT3) ** (2.0 / 3.0)

@@ -71,6 +71,33 @@ def test_full_moments_and_cube_root_integral(name, shape, ref):
     assert m.cube_root_integral() == pytest.approx(want, rel=1e-7)
 
 
+# (scipy.stats's own cube-root families: p**(1/3) of each model is the same
+# family with the scale times 3**(1/beta) (3 for Laplace) or, for the two-sided
+# gamma, shape (s + 2) / 3 and scale 3 theta)
+CUBE_ROOT = {
+    "gaussian": lambda m: st.norm(scale=math.sqrt(3)),
+    "laplacian": lambda m: st.laplace(scale=3 / SQ2),
+    "uniform": lambda m: st.uniform(loc=-math.sqrt(3), scale=2 * math.sqrt(3)),
+    "gamma": lambda m: st.dgamma((m.shape + 2) / 3,
+                                 scale=3 * (1 / math.sqrt(m.shape * (m.shape + 1)))),
+    "generalized-gaussian": lambda m: st.gennorm(
+        m.shape, scale=math.sqrt(math.gamma(1 / m.shape) / math.gamma(3 / m.shape))
+        * 3 ** (1 / m.shape)),
+}
+
+
+@pytest.mark.parametrize("name, shape, ref", CASES)
+def test_quantiles_equal_scipy_stats_exactly(name, shape, ref):
+    """ppf and cube_root_ppf compute scipy.stats's quantile formulas without
+    importing it: bit for bit the same, ends and bad probabilities included."""
+    m = pdf_model(name, mean=0.0, std=1.0, shape=shape)
+    q = np.concatenate([[0.0, 1.0, np.nan, -0.1, 1.1, 5e-324, 1e-300, 0.5, 1 - 1e-16],
+                        np.linspace(0, 1, 1001), np.geomspace(1e-12, 0.5, 200)])
+    np.testing.assert_array_equal(m.ppf(q), ref.ppf(q))
+    np.testing.assert_array_equal(m.cube_root_ppf(q), CUBE_ROOT[name](m).ppf(q))
+    assert m.ppf(0.25) == ref.ppf(0.25) and np.ndim(m.ppf(0.25)) == 0
+
+
 def test_gaussian_cube_root_integral_closed_form():
     # (int p^(1/3))^3 = 6 sqrt(3) pi sigma^2 for a Gaussian (Panter & Dite 1951)
     m = pdf_model("gaussian", std=2.0)

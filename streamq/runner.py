@@ -91,6 +91,19 @@ def summary_lines(result: RunResult) -> list[str]:
     return lines
 
 
+def release_memory() -> None:
+    """Collect garbage and hand freed heap pages back to the system (glibc's
+    ``malloc_trim``; a no-op elsewhere), so that what a finished run freed does
+    not add to the peak of what comes next."""
+    import ctypes
+    import gc
+    gc.collect()
+    try:
+        ctypes.CDLL(None).malloc_trim(0)
+    except (OSError, AttributeError):   # not glibc
+        pass
+
+
 def write_report_pages(result: RunResult) -> list[Path]:
     """Plots and report.html after a run (complete or not). A failure here only
     warns: report.json is already on disk and stays as it is."""
@@ -120,6 +133,10 @@ def run_graph_file(args) -> int:
         result = run_offline(built, block=args.block, progress=bar)
     finally:
         bar.close()
+    # the nodes' buffers and series are in the files and the report now: let them
+    # go before plotting, which is when an hours-long run's memory peaks
+    del built
+    release_memory()
     if not getattr(args, "quiet", False) or not result.complete:
         for line in summary_lines(result):
             print(line)

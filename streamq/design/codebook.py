@@ -66,6 +66,14 @@ def _as_vector(values, name: str) -> np.ndarray:
     return arr
 
 
+def _version_number(version) -> int:
+    """A codebook version as an int, or a one-line StreamqError."""
+    try:
+        return int(version)
+    except (TypeError, ValueError):
+        raise StreamqError(f"codebook version must be an integer, got {version!r}") from None
+
+
 class Codebook:
     """Immutable scalar quantizer: thresholds, levels and a version number.
 
@@ -117,10 +125,7 @@ class Codebook:
                 f"codebook thresholds must be strictly increasing; thresholds[{bad}] = "
                 f"{th[bad]!r} is not above thresholds[{bad - 1}] = {th[bad - 1]!r}"
             )
-        try:
-            version = int(version)
-        except (TypeError, ValueError):
-            raise StreamqError(f"codebook version must be an integer, got {version!r}") from None
+        version = _version_number(version)
         lv.setflags(write=False)
         th.setflags(write=False)
         object.__setattr__(self, "_levels", lv)
@@ -193,8 +198,9 @@ class Codebook:
         return math.log2(self._levels.size)
 
     def with_version(self, version: int) -> "Codebook":
-        """Same thresholds and levels under another version number."""
-        return Codebook(self._levels, self._thresholds, version)
+        """Same thresholds and levels under another version number (the
+        read-only arrays are shared, not checked again)."""
+        return Codebook._trusted(self._levels, self._thresholds, _version_number(version))
 
     def __eq__(self, other):
         if not isinstance(other, Codebook):

@@ -67,6 +67,10 @@ def test_immutable():
     with pytest.raises(ValueError):
         cb.thresholds[0] = 5.0
     assert cb.with_version(7).version == 7 and cb.version == 0
+    again = cb.with_version(8)   # shares the (read-only) arrays, still equal as a codebook
+    assert again.levels is cb.levels and again == Codebook(cb.levels, cb.thresholds, version=8)
+    with pytest.raises(StreamqError, match="version must be an integer"):
+        cb.with_version("next")
 
 
 def test_decode_rejects_out_of_range():

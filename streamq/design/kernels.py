@@ -20,6 +20,24 @@ from numba import njit
 
 
 @njit(cache=True)
+def _count_at_or_below(th, a, b, v):  # pragma: no cover - compiled
+    """``a`` plus how many of the ascending ``th[a:b]`` are <= v (v not NaN),
+    by a binary search whose loop trip count does not depend on ``v``."""
+    k = b - a
+    if k <= 0:
+        return a
+    base = a
+    while k > 1:
+        half = k >> 1
+        if th[base + half] <= v:
+            base += half
+        k -= half
+    if th[base] <= v:
+        base += 1
+    return base
+
+
+@njit(cache=True)
 def encode_rows(x, thresholds, out):  # pragma: no cover - compiled
     """Cell indices of a block, each channel with its own thresholds.
 
@@ -37,18 +55,7 @@ def encode_rows(x, thresholds, out):  # pragma: no cover - compiled
     for i in range(n):
         for c in range(C):
             v = x[i, c]
-            if v != v:
-                out[i, c] = m
-                continue
-            lo = 0
-            hi = m
-            while lo < hi:
-                mid = (lo + hi) >> 1
-                if thresholds[c, mid] <= v:
-                    lo = mid + 1
-                else:
-                    hi = mid
-            out[i, c] = lo
+            out[i, c] = m if v != v else _count_at_or_below(thresholds[c], 0, m, v)
 
 
 @njit(cache=True)
@@ -72,24 +79,6 @@ def decode_rows(idx, table, out):  # pragma: no cover - compiled
                 return i * C + c
             out[i, c] = table[c, k]
     return -1
-
-
-@njit(cache=True)
-def _count_at_or_below(th, a, b, v):  # pragma: no cover - compiled
-    """``a`` plus how many of the ascending ``th[a:b]`` are <= v (v not NaN),
-    by a binary search whose loop trip count does not depend on ``v``."""
-    k = b - a
-    if k <= 0:
-        return a
-    base = a
-    while k > 1:
-        half = k >> 1
-        if th[base + half] <= v:
-            base += half
-        k -= half
-    if th[base] <= v:
-        base += 1
-    return base
 
 
 @njit(cache=True)

@@ -124,8 +124,7 @@ def histogram_codebook(method: str, n_levels: int, centers: np.ndarray, counts: 
     return pad_levels(cb, n_levels)
 
 
-def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int,
-               occupied: np.ndarray | None = None):
+def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int):
     """The codebook in force as the starting point of a design on a window, or
     None for the method's cold start. The definition of the rule that
     :func:`window_codebook` applies compiled (tested equal).
@@ -148,8 +147,6 @@ def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int,
         The window's histogram.
     n_levels : int
         The level count asked for.
-    occupied : numpy.ndarray, optional
-        ``numpy.flatnonzero(counts > 0)``, if already at hand.
 
     Returns
     -------
@@ -160,8 +157,7 @@ def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int,
     lv = init.levels            # non-decreasing: the first and last are the extremes
     if lv.size < n_levels:
         return None
-    if occupied is None:
-        occupied = np.flatnonzero(counts > 0)
+    occupied = np.flatnonzero(counts > 0)
     if occupied.size == 0:
         return None
     if lv[0] < centers[occupied[0]] or lv[-1] > centers[occupied[-1]]:

@@ -193,7 +193,7 @@ def _window_reference(method, c, w, count, init, grid_bits):
     occupied = np.flatnonzero(w > 0)
     if occupied.size == 0:
         return None
-    warm = coding.warm_start(init, c, w, count, occupied)
+    warm = coding.warm_start(init, c, w, count)
     if method in ("lloyd-max", "optimal") and occupied.size <= count:
         cb = coding._exact_codebook(d, c[occupied], c, count)
     else:

@@ -8,7 +8,7 @@ nearest-neighbour conditions).
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from streamq.design import (
@@ -38,6 +38,11 @@ def histograms(draw):
 
 @settings(max_examples=150, deadline=None)
 @given(histograms())
+# found by CI: a subnormal weight next to a weight of 1 is below the running
+# sums' resolution, so the iteration sees zero distortion and the direct
+# measure of the returned codebook does not
+@example((np.arange(8.0) * 0 + np.eye(8)[7], np.eye(8)[6] + 2.22507386e-311 * np.eye(8)[7],
+          2, False))
 def test_property_distortion_never_increases_never_nan(case):
     # Lloyd (1982): each step can only lower the distortion
     c, w, L, warm = case
@@ -52,6 +57,11 @@ def test_property_distortion_never_increases_never_nan(case):
     # float64 resolves a distortion only to about eps * power: for data far
     # from zero compared with its spread, the mean enters the rounding
     slack = 1e-11 * scale + 1e-12 * mean * mean
+    # a weight below eps * total vanishes from the running sums the iteration
+    # uses, while the final figure is measured directly: the two differ by up
+    # to eps * (that weight's distance from the mean)^2 (common practice:
+    # float64 rounding of cumulative sums)
+    slack += 1e-13 * float(np.max((c[w > 0] - mean) ** 2))
     assert np.all(np.diff(h) <= slack)
     if h.size:
         assert rep.mse <= h[-1] + slack

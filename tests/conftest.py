@@ -1,6 +1,7 @@
 """Shared helpers for the engine, file, CLI and plugin tests.
 
-Nothing here is autouse: other test modules are not affected by importing it.
+Nothing here is autouse: other test modules are not affected by importing it. The one
+setting made here for every test is the property-test profile (below).
 Every helper works on real files in pytest's tmp_path (soundfile/libsndfile),
 and the command line is run as a real subprocess.
 """
@@ -18,6 +19,7 @@ from typing import Literal
 import numpy as np
 import pytest
 import soundfile as sf
+from hypothesis import settings
 from pydantic import Field
 
 from streamq.engine.blocks import Packet, SignalBlock, StreamSpec
@@ -28,6 +30,20 @@ from streamq.engine.scheduler import RunResult, build, run_offline
 
 REPO = Path(__file__).resolve().parents[1]
 DEMO = REPO / "graphs" / "demo.toml"
+
+
+# -- property tests: the same examples on every run unless asked otherwise ---------
+
+# A failing CI run keeps the work from landing, so the suite draws the same examples each
+# time ("repeatable"); "--hypothesis-profile=explore" draws fresh ones, to look for new
+# failures before a change goes in (see DEVELOPERS.md).
+settings.register_profile("repeatable", derandomize=True, print_blob=True)
+settings.register_profile("explore", print_blob=True)
+
+
+def pytest_configure(config):
+    if config.getoption("hypothesis_profile", None) is None:
+        settings.load_profile("repeatable")
 
 
 # -- graphs and runs ----------------------------------------------------------------

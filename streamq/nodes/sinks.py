@@ -9,11 +9,11 @@ from pydantic import Field
 
 from streamq.engine.audiofile import SafeWriter, format_for
 from streamq.engine.background import BackgroundWriter
+from streamq.engine.node import Node, NodeConfig
+from streamq.engine.registry import register
 
 #: blocks an offline file-sink may hold for its writing thread (memory bound)
 OFFLINE_QUEUE = 4
-from streamq.engine.node import Node, NodeConfig
-from streamq.engine.registry import register
 
 
 class FileSinkConfig(NodeConfig):

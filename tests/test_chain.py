@@ -210,18 +210,25 @@ def test_adaptive_ecsq_meets_its_entropy_target_like_a_cold_start(tmp_path):
 
 def test_warm_start_refuses_collapsed_or_too_wide_codebooks():
     from streamq.design import Codebook
-    from streamq.nodes.coding import pad_levels, warm_start
+    from streamq.design import lloyd_kernels as K
+    from streamq.nodes.coding import pad_levels
     centers = np.linspace(-1, 1, 201)
     counts = np.where(np.abs(centers) <= 0.5, 1.0, 0.0)
+
+    def start(cb):
+        """The encoder's choice for this window: WARM (from cb) or COLD."""
+        levels = K.NO_LEVELS if cb is None else cb.levels
+        return K.design_window(centers, counts, 8, levels, 0, 0, 0.0, 0)[0]
+
     fits = Codebook(levels=np.linspace(-0.4, 0.4, 8))
-    assert warm_start(fits, centers, counts, 8) is fits
-    assert warm_start(None, centers, counts, 8) is None
+    assert start(fits) == K.WARM
+    assert start(None) == K.COLD
     # two distinct levels padded to eight: collapsed
     collapsed = pad_levels(Codebook(levels=[-0.1, 0.1]), 8)
     assert len(collapsed.levels) == 8
-    assert warm_start(collapsed, centers, counts, 8) is None
+    assert start(collapsed) == K.COLD
     # outer levels beyond the window's occupied range: too wide
-    assert warm_start(Codebook(levels=np.linspace(-0.9, 0.9, 8)), centers, counts, 8) is None
+    assert start(Codebook(levels=np.linspace(-0.9, 0.9, 8))) == K.COLD
 
 
 def _announcements(path):

@@ -17,11 +17,12 @@ each step is one compiled call:
   :func:`streamq.engine.sideinfo.level_bits` in one pass;
 * :func:`design_window`: the encoder's whole design on a window in one call
   (the Python calls between the steps above cost as much as the steps): the
-  occupied bins, the exact codebook of :func:`streamq.nodes.coding._exact_codebook`,
-  the warm-start rule of :func:`streamq.nodes.coding.warm_start`, then the
+  occupied bins, the exact codebook of a window with few values
+  (:func:`_exact_levels`), the warm-start rule (:func:`_fits_window`), then the
   kernels above in turn.
 
-The numpy functions named are the definitions; the tests check each kernel
+The numpy functions named are the definitions (those of :func:`_exact_levels`
+and :func:`_fits_window` live in the tests); the tests check each kernel
 against its definition: exactly where the arithmetic is done in the same order,
 otherwise to a stated tolerance (numpy's ``sum`` adds pairwise and its ``dot``
 goes through BLAS, while the kernels add in index order). The kernels release
@@ -444,9 +445,20 @@ NO_LEVELS.setflags(write=False)
 
 @njit(cache=True, nogil=True)
 def _fits_window(levels, low, high, count):  # pragma: no cover - compiled
-    """Whether ``levels`` may warm-start a design on a window whose occupied
-    bin centers span ``[low, high]``: the rule of
-    :func:`streamq.nodes.coding.warm_start` (its definition)."""
+    """Whether ``levels`` (the codebook in force) may warm-start a design on a
+    window whose occupied bin centers span ``[low, high]``; otherwise the
+    design starts cold.
+
+    Levels are counted without padded duplicates
+    (:func:`streamq.nodes.coding.pad_levels`) or levels merged by the
+    side-information grid. The codebook is used only if it has ``count``
+    distinct levels and its outermost levels lie inside the window's occupied
+    range. A codebook that has collapsed (an entropy-constrained design drops
+    the cells that empty out, and a dropped cell never comes back from a warm
+    start) or that is far wider than the window (the first model codebook on a
+    quiet window) would leave cells empty and lose them for good; the cold
+    start spreads all the levels over the data again.
+    """
     L = levels.shape[0]
     if L < count:
         return False
@@ -462,8 +474,8 @@ def _fits_window(levels, low, high, count):  # pragma: no cover - compiled
 @njit(cache=True, nogil=True)
 def _exact_levels(centers, counts, occupied, count):  # pragma: no cover - compiled
     """A level on each occupied bin center, the ``count - occupied`` spare ones
-    outside the extremes one bin width apart (half below, the rest above): the
-    levels of :func:`streamq.nodes.coding._exact_codebook` (its definition)."""
+    outside the extremes one bin width apart (half below, the rest above): zero
+    error on a window with no more occupied bins than levels."""
     n = centers.shape[0]
     spare = count - occupied
     width = (centers[n - 1] - centers[0]) / max(n - 1, 1)
@@ -490,11 +502,10 @@ def design_window(centers, counts, count, init, mode, grid_bits, tol,
                   max_iter):  # pragma: no cover - compiled
     """The streaming encoder's design on one window's histogram, in one call.
 
-    Steps, each the compiled form of a numpy definition tested equal to it:
-    the occupied bins; with ``mode >= 1``, the exact codebook of a window
-    with at most ``count`` occupied bins
-    (:func:`streamq.nodes.coding._exact_codebook`); the warm-start rule
-    (:func:`streamq.nodes.coding.warm_start`); with ``mode == 2``,
+    Steps, each tested equal to a numpy definition: the occupied bins; with
+    ``mode >= 1``, the exact codebook of a window with at most ``count``
+    occupied bins (:func:`_exact_levels`); the warm-start rule
+    (:func:`_fits_window`); with ``mode == 2``,
     Lloyd-Max: :func:`prefix_sums`, :func:`cube_root_start` or the levels
     ``init``, :func:`lloyd_iterate`, :func:`midpoint_thresholds` (the codebook
     of :func:`streamq.design.lloyd.lloyd_max_histogram`); then

@@ -71,8 +71,8 @@ def window_codebook(method: str, n_levels: int, centers: np.ndarray, counts: np.
     One compiled call (:func:`streamq.design.lloyd_kernels.design_window`)
     finds the occupied bins, makes the exact codebook of a window with no more
     occupied bins than levels (``lloyd-max``, ``optimal``), applies the
-    warm-start rule (:func:`warm_start`) and, for ``lloyd-max``, designs and
-    puts the levels on the grid. Other methods, and the rare Lloyd-Max
+    warm-start rule (``encoder.warm_start`` option; see the kernel) and, for
+    ``lloyd-max``, designs and puts the levels on the grid. Other methods, and the rare Lloyd-Max
     windows it leaves to the general route (one value, cells that stay empty),
     are designed by :func:`histogram_codebook`.
 
@@ -124,49 +124,6 @@ def histogram_codebook(method: str, n_levels: int, centers: np.ndarray, counts: 
     return pad_levels(cb, n_levels)
 
 
-def warm_start(init, centers: np.ndarray, counts: np.ndarray, n_levels: int):
-    """The codebook in force as the starting point of a design on a window, or
-    None for the method's cold start. The definition of the rule that
-    :func:`window_codebook` applies compiled (tested equal).
-
-    Levels are counted without padded duplicates (see :func:`pad_levels`) or
-    levels merged by the side-information grid. The codebook is used only if
-    it has ``n_levels`` distinct levels and its outermost levels lie inside
-    the window's occupied range (bin centers). A codebook that has collapsed
-    (an entropy-constrained design drops the cells that empty out, and a
-    dropped cell never comes back from a warm start) or that is far wider
-    than the window (the first model codebook on a quiet window) would leave
-    cells empty and lose them for good; the cold start spreads all the levels
-    over the data again.
-
-    Parameters
-    ----------
-    init : Codebook or None
-        The newest design of the channel.
-    centers, counts : numpy.ndarray
-        The window's histogram.
-    n_levels : int
-        The level count asked for.
-
-    Returns
-    -------
-    Codebook or None
-    """
-    if init is None:
-        return None
-    lv = init.levels            # non-decreasing: the first and last are the extremes
-    if lv.size < n_levels:
-        return None
-    occupied = np.flatnonzero(counts > 0)
-    if occupied.size == 0:
-        return None
-    if lv[0] < centers[occupied[0]] or lv[-1] > centers[occupied[-1]]:
-        return None
-    if np.count_nonzero(lv[1:] > lv[:-1]) + 1 < n_levels:
-        return None
-    return init
-
-
 def pad_levels(cb, n_levels: int):
     """Keep a stream's level count fixed when a design (e.g. ECSQ) drops cells:
     the top level is repeated behind thresholds a hair above the last one, so
@@ -182,21 +139,6 @@ def pad_levels(cb, n_levels: int):
     th = np.concatenate([th, top + eps * np.arange(1, extra + 1)])
     lv = np.concatenate([lv, np.repeat(lv[-1], extra)])
     return d.Codebook(levels=lv, thresholds=th)
-
-
-def _exact_codebook(d, occupied: np.ndarray, centers: np.ndarray, n_levels: int):
-    """A level on each occupied value (zero error), the spare levels spread out
-    beyond the extremes, a bin width apart. The definition of the exact
-    codebook that :func:`window_codebook` makes compiled (tested equal)."""
-    spare = n_levels - occupied.size
-    width = (centers[-1] - centers[0]) / max(len(centers) - 1, 1) or 1e-6
-    below = spare // 2
-    above = spare - below
-    lv = np.concatenate([occupied[0] - width * np.arange(below, 0, -1), occupied,
-                         occupied[-1] + width * np.arange(1, above + 1)])
-    from streamq.design.lloyd_kernels import midpoint_thresholds
-    th, ok = midpoint_thresholds(lv, False)
-    return d.Codebook._trusted(lv, th) if ok else d.Codebook(levels=lv)
 
 
 def fixed_codebook(method: str, n_levels: int, opts: dict[str, Any], samples: np.ndarray | None):

@@ -184,18 +184,49 @@ def _numpy_prefix_args(c, w):
     return cs, ref, p01, total2, power, 1 if single else -1, total
 
 
+def _warm_start_reference(init, centers, counts, n_levels):
+    """The warm-start rule in numpy (see ``lloyd_kernels._fits_window``): the
+    codebook in force, or None for a cold start."""
+    if init is None:
+        return None
+    lv = init.levels            # non-decreasing: the first and last are the extremes
+    if lv.size < n_levels:
+        return None
+    occupied = np.flatnonzero(counts > 0)
+    if occupied.size == 0:
+        return None
+    if lv[0] < centers[occupied[0]] or lv[-1] > centers[occupied[-1]]:
+        return None
+    if np.count_nonzero(lv[1:] > lv[:-1]) + 1 < n_levels:
+        return None
+    return init
+
+
+def _exact_codebook_reference(occupied, centers, n_levels):
+    """The exact codebook in numpy (see ``lloyd_kernels._exact_levels``): a
+    level on each occupied value, the spare ones a bin width apart beyond the
+    extremes."""
+    spare = n_levels - occupied.size
+    width = (centers[-1] - centers[0]) / max(len(centers) - 1, 1) or 1e-6
+    below = spare // 2
+    above = spare - below
+    lv = np.concatenate([occupied[0] - width * np.arange(below, 0, -1), occupied,
+                         occupied[-1] + width * np.arange(1, above + 1)])
+    th, ok = K.midpoint_thresholds(lv, False)
+    return Codebook._trusted(lv, th) if ok else Codebook(levels=lv)
+
+
 def _window_reference(method, c, w, count, init, grid_bits):
     """What :func:`streamq.nodes.coding.window_codebook` computes, composed of
     the numpy definitions: the occupied bins, the warm-start rule, the exact
     codebook or the public design, the side-information code."""
     from streamq import design as d
-    from streamq.nodes import coding
     occupied = np.flatnonzero(w > 0)
     if occupied.size == 0:
         return None
-    warm = coding.warm_start(init, c, w, count)
+    warm = _warm_start_reference(init, c, w, count)
     if method in ("lloyd-max", "optimal") and occupied.size <= count:
-        cb = coding._exact_codebook(d, c[occupied], c, count)
+        cb = _exact_codebook_reference(c[occupied], c, count)
     else:
         cb, _ = d.design(method, count, centers=c, weights=w, init=warm)
     levels = round_levels(cb.levels, grid_bits)

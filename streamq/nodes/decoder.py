@@ -49,6 +49,15 @@ class Decoder(Node):
             from streamq.design.kernels import decode_rows, warm_up
             warm_up()
             self.kernel = decode_rows
+        self.step_scheme = None
+        if info.get("adapt") == "step":
+            from streamq.nodes.schemes.step import StepScheme
+            try:
+                self.step_scheme = StepScheme(info)
+            except (KeyError, TypeError, ValueError) as exc:
+                raise self.fail("input", f"node '{self.config.input}' describes a step-adapted "
+                                         f"stream this decoder cannot follow ({exc})") from None
+            self.steps = self.step_scheme.initial_state(self.C)
         if info.get("adapt") == "backward":
             self.backward = coding.BackwardAdapter(info, self.C)
             self.levels = [np.asarray(cb.levels) for cb in self.backward.current]
@@ -70,7 +79,18 @@ class Decoder(Node):
         idx = pkt.block.data
         out = np.empty((frames, self.C))
         events = []
-        if self.backward is not None:
+        if self.step_scheme is not None:
+            # every step follows from the indices; the announcements (the first
+            # codebook's reach, for meters) pass through
+            out, steps, bad = self.step_scheme.decode(np.ascontiguousarray(idx), self.steps)
+            if bad >= 0:
+                ch, n = divmod(bad, frames)
+                raise self.fail("input", f"index {int(idx[n, ch])} out of range (codebook has "
+                                         f"{self.L} levels) at sample {s + n}, channel {ch}")
+            self.steps = steps
+            events = self._updates(pkt.events, [])
+            self.versions += len(events)
+        elif self.backward is not None:
             sent = {(u.channel, u.at_sample): u for u in pkt.events if isinstance(u, CodebookUpdate)}
             for ch in range(self.C):
                 ic, oc = idx[:, ch], out[:, ch]
@@ -177,6 +197,8 @@ class Decoder(Node):
               "channel_versions": list(self.channel_versions)}
         if self.backward is not None:
             st["backward"] = self.backward.get_state()
+        if self.step_scheme is not None:
+            st["steps"] = self.steps.copy()
         return st
 
     def set_state(self, st):
@@ -185,3 +207,5 @@ class Decoder(Node):
         self.channel_versions = list(st["channel_versions"])
         if self.backward is not None:
             self.backward.set_state(st["backward"])
+        if self.step_scheme is not None:
+            self.steps = st["steps"].copy()

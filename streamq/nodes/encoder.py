@@ -21,6 +21,7 @@ Adaptation modes (DESIGN.md):
 from __future__ import annotations
 
 import collections
+import math
 from typing import Literal
 
 import numpy as np
@@ -33,6 +34,16 @@ from streamq.engine.registry import register
 from streamq.errors import StreamqError
 from streamq.nodes import coding
 from streamq.nodes.estimator import js_drift
+
+def unit_blocks(x: np.ndarray, size: int) -> np.ndarray:
+    """Training samples for gain mode's unit codebook: each whole block of
+    ``size`` samples divided by its RMS (silent blocks left out)."""
+    n = x.shape[0] // size
+    blocks = x[:n * size].reshape(n, size)
+    rms = np.sqrt(np.mean(blocks * blocks, axis=1))
+    keep = rms > 0
+    return (blocks[keep] / rms[keep, None]).ravel()
+
 
 def drift_decision(snap, ref, threshold: float):
     """(drift, retrain?) for the drift trigger: Jensen-Shannon divergence between
@@ -93,8 +104,9 @@ class EncoderConfig(NodeConfig):
     method: Literal[METHODS] = Field("lloyd-max", description="design method")
     bits: int | None = Field(None, ge=1, le=16, description="index word length (levels = 2**bits)")
     levels: int | None = Field(None, ge=2, le=65_536, description="level count (instead of bits)")
-    adapt: Literal["fixed", "trailing", "lookahead", "backward"] = Field(
-        "fixed", description="adaptation mode")
+    adapt: Literal["fixed", "trailing", "lookahead", "backward", "step", "gain"] = Field(
+        "fixed", description="adaptation mode (step: backward step adaptation sample by sample; "
+                             "gain: forward gain adaptation block by block)")
     design_from: Literal["histogram", "model"] = Field(
         "histogram", description="adaptive designs use the estimator's histogram or its fitted model")
     trigger: Literal["every-hop", "drift"] = Field(
@@ -123,6 +135,24 @@ class EncoderConfig(NodeConfig):
     codebooks_from: str | None = Field(
         None, description="replay: apply the codebook announcements of this index file (e.g. "
                           "recorded in a live run) instead of designing")
+    multipliers: list[float] | None = Field(
+        None, min_length=1, max_length=32_768,
+        description="step mode: step multiplier per index magnitude, innermost first (default: "
+                    "the table for 2 to 5 bits)")
+    min_step_db: float = Field(-80.0, ge=-200, le=0, description="step mode: smallest step, dB "
+                                                                  "re full scale")
+    max_step_db: float | None = Field(None, ge=-200, le=0,
+                                      description="step mode: largest step, dB re full scale "
+                                                  "(default: the step whose top level is at full "
+                                                  "scale)")
+    gain_block: Duration = Field(Duration(16, "ms"), description="gain mode: block coded with one "
+                                                                  "gain (also the added latency)")
+    gain_from: Literal["rms", "peak"] = Field("rms", description="gain mode: the block's RMS, or "
+                                                                 "its peak (no overload)")
+    gain_step_db: float = Field(1.5, gt=0, le=24, description="gain mode: spacing of the gain grid")
+    gain_bits: int = Field(6, ge=1, le=12, description="gain mode: side information per block and "
+                                                       "channel (the grid has 2**gain_bits gains "
+                                                       "from full scale down)")
     window: Duration = Field(Duration(500, "ms"), description="backward mode: decoded past used")
     hop: Duration = Field(Duration(100, "ms"), description="backward mode: time between redesigns")
 
@@ -145,9 +175,38 @@ class EncoderConfig(NodeConfig):
                 raise ValueError(f"{'levels' if self.levels is not None else 'bits'}: method "
                                  f"\"optimal\" designs on histograms with at most "
                                  f"{MAX_DP_LEVELS} levels ({self.n_levels} asked)")
+        if self.adapt in ("step", "gain"):
+            self._check_scheme()
         if self.method == "ecsq" and self.entropy is None:
             raise ValueError("entropy: method \"ecsq\" needs a target: set this field (bits/sample)")
         return self
+
+    def _check_scheme(self) -> None:
+        """The step and gain modes' own rules."""
+        from streamq.nodes.schemes.step import MULTIPLIERS
+        if self.method not in ("lloyd-max", "uniform"):
+            raise ValueError(f"method: adapt = \"{self.adapt}\" scales a \"lloyd-max\" or "
+                             f"\"uniform\" codebook")
+        if self.codebooks_from is not None:
+            raise ValueError(f"codebooks_from: adapt = \"{self.adapt}\" derives its codebooks "
+                             f"from the signal; nothing to replay")
+        if self.adapt == "gain":
+            return
+        L = self.n_levels
+        if L % 2 or L < 4:
+            raise ValueError(f"{'levels' if self.levels is not None else 'bits'}: adapt = "
+                             f"\"step\" needs an even level count of at least 4 (got {L})")
+        if self.multipliers is None:
+            if L not in {2 ** b for b in MULTIPLIERS}:
+                raise ValueError(f"multipliers: no default table for {L} levels (there is one "
+                                 f"for 2 to 5 bits); give {L // 2} values")
+        elif len(self.multipliers) != L // 2:
+            raise ValueError(f"multipliers: give {L // 2} values (one per index magnitude, "
+                             f"innermost first), got {len(self.multipliers)}")
+        elif not all(math.isfinite(m) and m > 0 for m in self.multipliers):
+            raise ValueError("multipliers: every multiplier must be a finite number above 0")
+        if self.max_step_db is not None and self.max_step_db < self.min_step_db:
+            raise ValueError("max_step_db: must not be below min_step_db")
 
     @property
     def n_levels(self) -> int:
@@ -208,6 +267,7 @@ class Encoder(Node):
         self.last_design = [-(10 ** 18)] * self.C
         self.drift = [None] * self.C
         self.backward = None
+        self.scheme = self.scheme_state = None    # step and gain modes (nodes/schemes)
         self.in_force = [0] * self.C
         coding_info = {"adapt": c.adapt, "method": c.method, "levels": self.L,
                        "grid_bits": None if self.standard else c.grid_bits}
@@ -224,6 +284,9 @@ class Encoder(Node):
             first = self.backward.current[0]
             self.current = list(self.backward.current)
             bits0 = 0
+        elif c.adapt in ("step", "gain"):
+            first, bits0 = self._open_scheme(ctx, coding_info)
+            self.current = [first] * self.C
         else:
             samples = None
             if c.train is not None:
@@ -277,6 +340,70 @@ class Encoder(Node):
         return StreamSpec("index", self.rate, self.C, spec.latency + self.delay, None, spec.frames,
                           {"coding": coding_info, "n_levels": self.L,
                            "index_dtype": self.dtype.name})
+
+    def _open_scheme(self, ctx, coding_info: dict):
+        """Step and gain modes: the scheme, its first state, and the first
+        codebook to announce with its cost in bits."""
+        c = self.config
+        if c.adapt == "step":
+            from streamq.nodes.schemes.step import MULTIPLIERS, StepScheme, coding_info as step_info
+            bits = self.L.bit_length() - 1
+            mult = c.multipliers if c.multipliers is not None else MULTIPLIERS[bits]
+            coding_info.update(step_info(c.method, self.L, c.model, c.shape, c.scale, mult,
+                                         c.min_step_db, c.max_step_db))
+            self.scheme = StepScheme(coding_info)
+            self.scheme_state = self.scheme.initial_state(self.C)
+            # announced for the meter: the reach of the widest step (the decoder
+            # derives every step itself: no side information)
+            return self.scheme.widest(), 0
+        from streamq.nodes.schemes.gain import GainScheme
+        size = c.gain_block.samples(self.rate)
+        if size < 1:
+            raise self.fail("gain_block", "a gain block must hold at least 1 sample")
+        samples = None
+        if c.train is not None:
+            samples = self._read_training(ctx)
+            samples = unit_blocks(samples, size)
+            if samples.size == 0:
+                raise self.fail("train", f"{c.train}: silent; nothing to design the unit "
+                                         f"codebook on")
+        try:
+            unit = coding.fixed_codebook(c.method, self.L, {**self.opts, "scale": 1.0}, samples)
+        except Exception as exc:
+            raise self.fail("method", f"cannot design the unit codebook: {exc}") from None
+        # a model's unit codebook is known at both ends; a trained one is sent
+        # once, a grid_bits word per level
+        bits0 = 0 if samples is None else self.L * c.grid_bits
+        self.scheme = GainScheme(unit, size, c.gain_step_db, c.gain_bits, c.gain_from == "peak",
+                                 c.method)
+        self.scheme_state = self.scheme.initial_state(self.C, c.scale)
+        self.delay = size
+        coding_info.update({"gain_block": size, "gain_from": c.gain_from,
+                            "gain_step_db": c.gain_step_db, "gain_bits": c.gain_bits})
+        return self.scheme.codebook(self.scheme_state.index[0]), bits0 + c.gain_bits
+
+    def _scheme_step(self, s: int, x: np.ndarray, frames: int) -> Packet:
+        """Step and gain modes: the scheme codes the block; the node keeps the
+        books (versions, updates, side information)."""
+        at_start = list(self.in_force)
+        if self.config.adapt == "step":
+            out, self.scheme_state = self.scheme.encode(x, self.scheme_state, self.dtype)
+        else:
+            out, made, self.scheme_state = self.scheme.encode(x, s, self.scheme_state, self.dtype,
+                                                              self.span_kernel)
+            for u in made:
+                self._book(u)
+        events = [u for u in self.pending if u.at_sample < s + frames]
+        self.pending = [u for u in self.pending if u.at_sample >= s + frames]
+        events.sort(key=lambda u: (u.at_sample, u.channel))
+        return Packet(IndexBlock(out, s, self.rate, _versions(s, at_start, events)), tuple(events))
+
+    def _book(self, u: CodebookUpdate) -> None:
+        """Count an announcement the scheme made, and queue it."""
+        self.version[u.channel] = self.in_force[u.channel] = u.version
+        self.pending.append(u)
+        self.updates += 1
+        self.side_bits += u.side_info_bits
 
     def _open_replay(self, ctx) -> None:
         from streamq.engine.indexio import IndexReader
@@ -443,6 +570,8 @@ class Encoder(Node):
         pkt = inputs["input"]
         s, e = pkt.block.start, pkt.block.start + frames
         x = pkt.block.data
+        if self.scheme is not None:
+            return self._scheme_step(s, x, frames)
         if self.fast_live and not self.pending and (self.th_rows is not None
                                                     or self._stack_thresholds() is not None):
             return self._live_step(s, e, x, frames)
@@ -607,6 +736,8 @@ class Encoder(Node):
               "delay_line": self.delay_line.get_state()}
         if self.backward is not None:
             st["backward"] = self.backward.get_state()
+        if self.scheme is not None:
+            st["scheme"] = self.scheme_state
         return st
 
     def set_state(self, st):
@@ -619,3 +750,6 @@ class Encoder(Node):
         self.delay_line.set_state(st["delay_line"])
         if self.backward is not None:
             self.backward.set_state(st["backward"])
+        if self.scheme is not None:
+            self.scheme_state = st["scheme"]
+            self.in_force = list(self.version)

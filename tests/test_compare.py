@@ -15,7 +15,7 @@ import soundfile as sf
 
 from chain_util import run_toml
 from streamq.errors import StreamqError
-from streamq.report.compare import METHODS, compare, table_lines
+from streamq.report.compare import METHODS, SCHEMES, compare, table_lines
 
 REPO = Path(__file__).resolve().parents[1]
 AUDIO = REPO / "graphs" / "audio" / "three-part-program.flac"  # invented 9 s mono program
@@ -23,14 +23,15 @@ FIGURES = ("snr_db", "segsnr_db", "bits_per_sample", "side_info_bits_per_sample"
            "codebook_updates", "samples")
 
 
-def single(audio: Path, encoder_fields: str, adaptive: bool = False) -> str:
+def single(audio: Path, encoder_fields: str, adaptive: bool = False,
+           window: str = "500 ms", hop: str = "100 ms") -> str:
     """A one-method chain, written out by hand."""
     stats = f"""
 [nodes.stats]
 use = "pdf-estimator"
 input = "feed"
-window = "500 ms"
-hop = "100 ms"
+window = "{window}"
+hop = "{hop}"
 """ if adaptive else ""
     return f"""
 [graph]
@@ -85,10 +86,21 @@ def test_every_method_equals_its_own_single_run(four_bit, tmp_path):
         "lloyd-max-adaptive": 'pdf = "stats"\nmethod = "lloyd-max"\nbits = 4\nadapt = "trailing"',
         "optimal": f'method = "optimal"\nbits = 4\ntrain = "{AUDIO}"',
         "ecsq": f'method = "ecsq"\nbits = 4\nentropy = 3.5\ntrain = "{AUDIO}"',
+        # the adaptive schemes on short blocks, as the module docstring describes them
+        "lloyd-max-trailing": 'pdf = "stats"\nmethod = "lloyd-max"\nbits = 4\nadapt = "trailing"',
+        "lloyd-max-lookahead": 'pdf = "stats"\nmethod = "lloyd-max"\nbits = 4\nadapt = "lookahead"',
+        "lloyd-max-gain": 'method = "lloyd-max"\nbits = 4\nadapt = "gain"\ngain_block = "16 ms"',
+        "lloyd-max-step": 'method = "lloyd-max"\nbits = 4\nadapt = "step"',
+        "uniform-step": 'method = "uniform"\nbits = 4\nadapt = "step"',
+        "lloyd-max-backward": 'method = "lloyd-max"\nbits = 4\nadapt = "backward"\nhop = "100 ms"',
     }
+    short = {"lloyd-max-trailing", "lloyd-max-lookahead"}
     assert got["uniform"]["settings"]["scale"] == pytest.approx(rms, rel=1e-12)
     for method, enc in fields.items():
-        alone = run_toml(single(AUDIO, enc, adaptive=method == "lloyd-max-adaptive"),
+        adaptive = method == "lloyd-max-adaptive" or method in short
+        win = "32 ms" if method in short else "500 ms"
+        alone = run_toml(single(AUDIO, enc, adaptive=adaptive, window=win,
+                                hop="32 ms" if method in short else "100 ms"),
                          tmp_path / method)["meters"]["noise"]
         for key in FIGURES:
             assert got[method][key] == alone[key], (method, key)
@@ -107,7 +119,13 @@ def test_table_is_ranked_by_snr(four_bit):
     # on a recording whose level changes by some 50 dB, retraining wins on segmental SNR
     # and a fixed design trained on the file beats a fixed uniform one on SNR
     got = by_method(res)
-    assert got["lloyd-max-adaptive"]["segsnr_db"] == max(r["segsnr_db"] for r in res["methods"])
+    fixed_or_slow = [r for r in res["methods"] if r["method"] not in SCHEMES]
+    assert got["lloyd-max-adaptive"]["segsnr_db"] == max(r["segsnr_db"] for r in fixed_or_slow)
+    # every row says what it is and whether it keeps to the total-rate budget (bits + 0.25)
+    assert res["max_rate"] == 4.25
+    for r in res["methods"]:
+        assert r["label"] and r["label"] in table_lines(res)[3 + res["methods"].index(r)]
+        assert r["within_rate"] == (r["bits_per_sample"] <= 4.25)
     assert got["lloyd-max"]["snr_db"] > got["uniform"]["snr_db"]
 
 

@@ -28,6 +28,26 @@ What each method name means here (all at ``--bits`` bits, i.e. 2**bits levels):
     ``--entropy`` bits/sample (default ``bits - 0.5``).
 ``g711-mu``, ``g711-a``
     the 8-bit G.711 tables (only with ``--bits 8``).
+
+Adaptive schemes on short blocks (the ``block`` length, default in
+:data:`SCHEMES`, is what ``streamq sweep`` varies):
+
+``lloyd-max-trailing``
+    Lloyd-Max redesigned from the trailing window, window = hop = block
+    (32 ms); side information counted.
+``lloyd-max-lookahead``
+    Lloyd-Max designed on the very window it codes (one window of latency),
+    window = hop = block (32 ms); side information counted.
+``lloyd-max-gain``
+    forward gain adaptation: a unit-variance Gaussian Lloyd-Max codebook
+    scaled per block (16 ms) by the block's RMS on a 1.5 dB grid, 6 bits of
+    side information per block.
+``lloyd-max-step``, ``uniform-step``
+    backward step adaptation sample by sample (Lloyd-Max or uniform shape),
+    no side information (2 to 5 bits, where the default multipliers exist).
+``lloyd-max-backward``
+    the model-fit backward mode: a Gaussian fitted to the decoded past every
+    hop; no side information.
 """
 
 from __future__ import annotations
@@ -36,14 +56,66 @@ import json
 import math
 import sys
 import tempfile
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
 from streamq.errors import StreamqError
 
-METHODS = ("uniform", "mu-law", "a-law", "lloyd-max", "lloyd-max-adaptive", "optimal", "ecsq")
+
+@dataclass(frozen=True)
+class Scheme:
+    """One adaptive scheme of the comparison: its default block (None: no
+    block), what the block is (``window`` of the estimator, ``gain_block``,
+    ``hop`` of the backward fit) and the word lengths it runs at."""
+
+    label: str
+    block_ms: float | None = None
+    min_bits: int = 1
+    max_bits: int = 16
+
+
+SCHEMES = {
+    "lloyd-max-trailing": Scheme("Lloyd-Max, trailing window, window = hop = {block} ms", 32.0),
+    "lloyd-max-lookahead": Scheme("Lloyd-Max, lookahead, window = hop = {block} ms", 32.0),
+    "lloyd-max-gain": Scheme("Gaussian Lloyd-Max x block RMS, {block} ms blocks, 1.5 dB "
+                             "grid, 6 bits/block", 16.0),
+    "lloyd-max-step": Scheme("Gaussian Lloyd-Max shape, step adapted every sample", None, 2, 5),
+    "uniform-step": Scheme("uniform, step adapted every sample", None, 2, 5),
+    "lloyd-max-backward": Scheme("Gaussian fitted to the decoded past, {block} ms hop, "
+                                 "500 ms window", 100.0),
+}
+FIXED_LABELS = {
+    "uniform": "fixed uniform, +-{loading:g} RMS",
+    "mu-law": "fixed mu-law compander, mu = 255",
+    "a-law": "fixed A-law compander, A = 87.6",
+    "lloyd-max": "fixed Lloyd-Max trained on the file",
+    "lloyd-max-adaptive": "Lloyd-Max, trailing window, {window} window, {hop} hop",
+    "optimal": "fixed globally optimal (DP) trained on the file",
+    "ecsq": "fixed entropy-constrained, trained on the file",
+    "g711-mu": "G.711 mu-law table",
+    "g711-a": "G.711 A-law table",
+}
+METHODS = ("uniform", "mu-law", "a-law", "lloyd-max", "lloyd-max-adaptive", "optimal", "ecsq",
+           *SCHEMES)
 EXTRA_METHODS = ("g711-mu", "g711-a")
 EXIT_OK, EXIT_INTERRUPTED = 0, 130
+
+
+def available(method: str, bits: int) -> bool:
+    """Whether ``method`` runs at ``bits`` (step adaptation has default
+    multipliers for 2 to 5 bits only)."""
+    sc = SCHEMES.get(method)
+    return sc is None or sc.min_bits <= bits <= sc.max_bits
+
+
+def label(method: str, settings: dict[str, Any], *, loading: float = 4.0,
+          window: str = "500 ms", hop: str = "100 ms", block_ms: float | None = None) -> str:
+    """What a row is, with its settings, in words."""
+    if method in SCHEMES:
+        b = block_ms if block_ms is not None else SCHEMES[method].block_ms
+        return SCHEMES[method].label.format(block=f"{b:g}" if b is not None else "")
+    return FIXED_LABELS[method].format(loading=loading, window=window, hop=hop)
 
 
 # -- the graph -------------------------------------------------------------------------
@@ -87,6 +159,10 @@ def parse_methods(text: str, bits: int) -> list[str]:
                                f"{', '.join(METHODS + EXTRA_METHODS)})")
         if m in EXTRA_METHODS and bits != 8:
             raise StreamqError(f"--methods: {m} is the 8-bit G.711 table; use --bits 8")
+        if not available(m, bits):
+            sc = SCHEMES[m]
+            raise StreamqError(f"--methods: {m} runs at {sc.min_bits} to {sc.max_bits} bits "
+                               f"(its default multipliers), not {bits}")
         if m not in out:
             out.append(m)
     if not out:
@@ -94,9 +170,18 @@ def parse_methods(text: str, bits: int) -> list[str]:
     return out
 
 
+def _ms(v: float) -> str:
+    return f"{v:g} ms"
+
+
 def encoder_settings(method: str, bits: int, audio: Path, rms: float, *,
-                     entropy: float | None = None, loading: float = 4.0) -> dict[str, Any]:
-    """The encoder node's fields for one compared method (besides use/input/pdf)."""
+                     entropy: float | None = None, loading: float = 4.0,
+                     block_ms: float | None = None) -> dict[str, Any]:
+    """The encoder node's fields for one compared method (besides use/input/pdf).
+
+    Adaptive schemes on a block of their own (``lloyd-max-trailing``,
+    ``-lookahead``) carry their estimator's fields under the key
+    ``"estimator"`` (window and hop), which is not an encoder field."""
     if method == "uniform":
         return {"method": "uniform", "bits": bits, "loading": float(loading),
                 "scale": min(float(rms), 1.0 / float(loading))}
@@ -107,27 +192,47 @@ def encoder_settings(method: str, bits: int, audio: Path, rms: float, *,
         return {"method": method, "bits": 8}
     if method == "lloyd-max-adaptive":
         return {"method": "lloyd-max", "bits": bits, "adapt": "trailing"}
+    if method in SCHEMES:
+        b = _ms(block_ms if block_ms is not None else SCHEMES[method].block_ms or 0.0)
+        if method in ("lloyd-max-trailing", "lloyd-max-lookahead"):
+            return {"method": "lloyd-max", "bits": bits, "adapt": method.rsplit("-", 1)[1],
+                    "estimator": {"window": b, "hop": b}}
+        if method == "lloyd-max-gain":
+            return {"method": "lloyd-max", "bits": bits, "adapt": "gain", "gain_block": b}
+        if method == "lloyd-max-backward":
+            return {"method": "lloyd-max", "bits": bits, "adapt": "backward", "hop": b}
+        return {"method": method.split("-step")[0], "bits": bits, "adapt": "step"}
     s: dict[str, Any] = {"method": method, "bits": bits, "train": str(audio)}
     if method == "ecsq":
         s["entropy"] = float(entropy if entropy is not None else bits - 0.5)
     return s
 
 
+def needs_estimator(settings: dict[str, Any]) -> bool:
+    return settings.get("adapt", "fixed") in ("trailing", "lookahead")
+
+
 def build_compare_toml(audio: Path, methods: list[str], settings: dict[str, dict[str, Any]], *,
                        window: str = "500 ms", hop: str = "100 ms") -> str:
-    """The fan-out graph as TOML text: one source, an estimator when needed, and an
-    encoder, decoder and meter per method (the meter's id is the method name)."""
+    """The fan-out graph as TOML text: one source, the estimators the methods
+    need (one shared at ``window``/``hop``, and one per method that brings
+    its own), and an encoder, decoder and meter per method (the meter's id is
+    the method name)."""
     lines = ["# made by `streamq compare`", "[graph]", 'name = "compare"', "",
              "[nodes.feed]", 'use = "file-source"', f"path = {toml_string(str(audio))}", ""]
-    adaptive = any(s.get("adapt", "fixed") != "fixed" for s in settings.values())
-    if adaptive:
+    if any(needs_estimator(s) and "estimator" not in s for s in settings.values()):
         lines += ["[nodes.stats]", 'use = "pdf-estimator"', 'input = "feed"',
                   f"window = {toml_string(window)}", f"hop = {toml_string(hop)}", ""]
     for m in methods:
-        s = settings[m]
+        s = dict(settings[m])
+        own = s.pop("estimator", None)
+        if own is not None:
+            lines += [f"[nodes.{m}-stats]", 'use = "pdf-estimator"', 'input = "feed"']
+            lines += [f"{k} = {toml_value(v)}" for k, v in own.items()]
+            lines.append("")
         lines += [f"[nodes.{m}-enc]", 'use = "encoder"', 'input = "feed"']
-        if s.get("adapt", "fixed") != "fixed":
-            lines.append('pdf = "stats"')
+        if needs_estimator(s):
+            lines.append(f'pdf = "{m}-stats"' if own is not None else 'pdf = "stats"')
         lines += [f"{k} = {toml_value(v)}" for k, v in s.items()]
         lines += ["", f"[nodes.{m}-dec]", 'use = "decoder"', f'input = "{m}-enc"', "",
                   f"[nodes.{m}]", 'use = "error-meter"', 'reference = "feed"',
@@ -154,9 +259,10 @@ def file_rms(path: Path) -> tuple[float, Any]:
 
 # -- running -----------------------------------------------------------------------------
 
-def compare(audio: str | Path, bits: int, methods: list[str] | str = METHODS, *,
+def compare(audio: str | Path, bits: int, methods: list[str] | str | None = None, *,
             out_dir: str | Path | None = None, entropy: float | None = None,
             loading: float = 4.0, window: str = "500 ms", hop: str = "100 ms",
+            max_rate: float | None = None,
             progress: Callable[[int, int | None], None] | None = None,
             handle_signals: bool = True, plots: bool = True) -> dict[str, Any]:
     """Run every method over ``audio`` in one pass and return the comparison.
@@ -165,11 +271,14 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str = METHODS, *,
     ----------
     audio : the recording (any format libsndfile reads).
     bits : index word length of every method.
-    methods : method names (see the module docstring) or a comma-separated string.
+    methods : method names (see the module docstring) or a comma-separated string;
+        default: every one of :data:`METHODS` that runs at ``bits``.
     out_dir : keep the run here (graph.toml, report.json, CSV files, plots,
         report.html); default: a temporary folder that is removed afterwards.
     entropy : ecsq target in bits/sample (default ``bits - 0.5``).
     loading : uniform range in multiples of the file's RMS.
+    max_rate : total-rate budget in bits/sample, side information included
+        (default ``bits + 0.25``); each row says whether it stays within it.
 
     Returns
     -------
@@ -183,6 +292,12 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str = METHODS, *,
     if not 1 <= int(bits) <= 16:
         raise StreamqError(f"--bits: give 1 to 16 bits, got {bits}")
     bits = int(bits)
+    if methods is None:
+        methods = [m for m in METHODS if available(m, bits)]
+    if max_rate is None:
+        max_rate = bits + 0.25
+    if not max_rate > 0:
+        raise StreamqError(f"--max-rate: must be above 0 bits/sample, got {max_rate}")
     if isinstance(methods, str):
         methods = parse_methods(methods, bits)
     else:
@@ -225,8 +340,11 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str = METHODS, *,
     rows = []
     for m in methods:
         r = report["meters"].get(m, {})
+        rate = r.get("bits_per_sample")
         rows.append({
             "method": m,
+            "label": label(m, settings[m], loading=loading, window=window, hop=hop),
+            "within_rate": rate is not None and rate <= max_rate + 1e-12,
             "snr_db": r.get("snr_db"),
             "segsnr_db": r.get("segsnr_db"),
             "bits_per_sample": r.get("bits_per_sample"),
@@ -248,6 +366,7 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str = METHODS, *,
         "frames": info.frames,
         "seconds": info.frames / info.samplerate,
         "rms": rms,
+        "max_rate": max_rate,
         "complete": result.complete,
         "last_sample": result.samples,
         "run_seconds": result.seconds,
@@ -270,8 +389,8 @@ def table_lines(res: dict[str, Any]) -> list[str]:
     if not res["complete"]:
         head += f"; STOPPED EARLY at sample {res['last_sample']} (figures cover that much)"
     cols = [("method", 20, "<"), ("SNR dB", 8, ">"), ("seg SNR dB", 11, ">"),
-            ("bits/sample", 12, ">"), ("entropy+side", 13, ">"), ("updates", 8, ">"),
-            ("overload", 9, ">")]
+            ("bits/sample", 12, ">"), ("in budget", 9, ">"), ("entropy+side", 13, ">"),
+            ("updates", 8, ">"), ("overload", 9, ">"), ("settings", 0, "<")]
     lines = [head, "  ".join(f"{name:{al}{w}}" for name, w, al in cols),
              "  ".join("-" * w for _, w, _ in cols)]
 
@@ -282,13 +401,16 @@ def table_lines(res: dict[str, Any]) -> list[str]:
 
     for r in res["methods"]:
         vals = [r["method"], f(r["snr_db"], "{:.2f}"), f(r["segsnr_db"], "{:.2f}"),
-                f(r["bits_per_sample"], "{:.4f}"),
+                f(r["bits_per_sample"], "{:.4f}"), "yes" if r.get("within_rate") else "NO",
                 f(r["entropy_bits_per_sample_with_side_info"], "{:.4f}"),
                 f(r["codebook_updates"], "{:d}"),
-                f(None if r["overload_share"] is None else 100 * r["overload_share"], "{:.3f}%")]
-        lines.append("  ".join(f"{v:{al}{w}}" for v, (_, w, al) in zip(vals, cols)))
+                f(None if r["overload_share"] is None else 100 * r["overload_share"], "{:.3f}%"),
+                r.get("label", "")]
+        lines.append("  ".join(f"{v:{al}{w}}" for v, (_, w, al) in zip(vals, cols)).rstrip())
     lines.append("bits/sample = fixed-rate index bits + side information; entropy+side = index "
                  "entropy + side information")
+    if "max_rate" in res:
+        lines.append(f"in budget: total bits/sample at most {res['max_rate']:g} (--max-rate)")
     return lines
 
 
@@ -314,9 +436,12 @@ def add_parser(subparsers) -> None:
                     "hop from the trailing window.")
     p.add_argument("audio", type=Path, metavar="AUDIOFILE", help="the recording to compare on")
     p.add_argument("--bits", type=int, required=True, help="index word length of every method")
-    p.add_argument("--methods", default=",".join(METHODS),
-                   help=f"comma-separated (default: {','.join(METHODS)}; also "
-                        f"{','.join(EXTRA_METHODS)} with --bits 8)")
+    p.add_argument("--methods", default=None,
+                   help=f"comma-separated (default: {','.join(METHODS)}, those that run at "
+                        f"--bits; also {','.join(EXTRA_METHODS)} with --bits 8)")
+    p.add_argument("--max-rate", type=float, default=None, dest="max_rate",
+                   help="total-rate budget, bits/sample with side information (default: "
+                        "bits + 0.25); rows above it are marked")
     p.add_argument("--entropy", type=float, help="ecsq target, bits/sample (default: bits - 0.5)")
     p.add_argument("--loading", type=float, default=4.0,
                    help="uniform: half-range in multiples of the file's RMS (default 4)")
@@ -342,7 +467,8 @@ def run(args) -> int:
         pass  # compare() names the problem with the file
     try:
         res = compare(args.audio, args.bits, args.methods, out_dir=args.out, entropy=args.entropy,
-                      loading=args.loading, window=args.window, hop=args.hop, progress=bar)
+                      loading=args.loading, window=args.window, hop=args.hop,
+                      max_rate=args.max_rate, progress=bar)
     finally:
         if bar is not None:
             bar.close()

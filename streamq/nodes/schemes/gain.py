@@ -2,7 +2,8 @@
 
 The encoder holds back one block (``gain_block`` samples, 16 ms by default),
 measures its RMS (or peak), puts that gain on a logarithmic grid
-(``gain_step_db`` apart, ``gain_bits`` bits, the top at full scale) and codes
+(``gain_step_db`` apart, ``gain_bits`` bits, the top at full scale, the
+last index meaning silence: every sample decodes to 0) and codes
 the block with one fixed unit-variance codebook scaled by the gain. The gain
 index is the side information: ``gain_bits`` per block and channel, announced
 as a CodebookUpdate at the block's first output sample, so any decoder (and
@@ -100,20 +101,26 @@ class GainScheme:
         self._table: dict[int, object] = {}
 
     def gain(self, k: int) -> float:
-        return 10.0 ** (-k * self.step_db / 20.0)
+        """Gain of index ``k``; the last index is silence (gain 0)."""
+        return 0.0 if k == self.count - 1 else 10.0 ** (-k * self.step_db / 20.0)
 
     def codebook(self, k: int):
-        """The unit codebook scaled by gain ``k`` (made once per index)."""
+        """The unit codebook scaled by gain ``k`` (made once per index). The
+        silence index decodes every index to 0 (its thresholds are those of
+        the smallest gain, so the codebook stays valid): digital silence
+        passes as silence, with no idle noise."""
         cb = self._table.get(k)
         if cb is None:
             from streamq.design import Codebook
             g = self.gain(k)
+            tg = g if g > 0 else 10.0 ** (-(self.count - 1) * self.step_db / 20.0)
             cb = self._table[k] = Codebook._trusted(np.asarray(self.unit.levels) * g,
-                                                    np.asarray(self.unit.thresholds) * g)
+                                                    np.asarray(self.unit.thresholds) * tg)
         return cb
 
     def grid_index(self, g: np.ndarray) -> np.ndarray:
-        """Gain indices of measured gains (0 = full scale; silence: the lowest)."""
+        """Gain indices of measured gains (0 = full scale; the last one,
+        silence, for blocks below the grid)."""
         g = np.asarray(g, dtype=np.float64)
         if self.peak:
             g = g / self.top

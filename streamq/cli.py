@@ -136,8 +136,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("kind", nargs="*", help="only these kinds")
     p.set_defaults(func=cmd_nodes)
 
-    for modname in ("streamq.design.command", "streamq.report.compare", "streamq.live.devices",
-                    "streamq.batch"):
+    for modname in ("streamq.design.command", "streamq.report.compare", "streamq.report.sweep",
+                    "streamq.live.devices", "streamq.batch"):
         try:
             mod = __import__(modname, fromlist=["add_parser"])
         except ModuleNotFoundError as exc:

@@ -139,6 +139,10 @@ class EncoderConfig(NodeConfig):
         None, min_length=1, max_length=32_768,
         description="step mode: step multiplier per index magnitude, innermost first (default: "
                     "the table for 2 to 5 bits)")
+    multiplier_power: float = Field(
+        1.0, gt=0, le=4, description="step mode: raise every multiplier to this power (1: as "
+                                     "given; below 1 the step moves more slowly: steadier on "
+                                     "noise-like material, slower on onsets)")
     min_step_db: float = Field(-80.0, ge=-200, le=0, description="step mode: smallest step, dB "
                                                                   "re full scale")
     max_step_db: float | None = Field(None, ge=-200, le=0,
@@ -348,7 +352,8 @@ class Encoder(Node):
         if c.adapt == "step":
             from streamq.nodes.schemes.step import MULTIPLIERS, StepScheme, coding_info as step_info
             bits = self.L.bit_length() - 1
-            mult = c.multipliers if c.multipliers is not None else MULTIPLIERS[bits]
+            mult = np.asarray(c.multipliers if c.multipliers is not None else MULTIPLIERS[bits],
+                              dtype=np.float64) ** c.multiplier_power
             coding_info.update(step_info(c.method, self.L, c.model, c.shape, c.scale, mult,
                                          c.min_step_db, c.max_step_db))
             self.scheme = StepScheme(coding_info)

@@ -45,7 +45,7 @@ MULTIPLIERS = {
 }
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")   # a division never raises (callback)
 def step_encode(x, th, mult, lo, hi, steps, out):  # pragma: no cover - compiled
     """Indices of a block under the step-adapted codebook; updates ``steps``.
 
@@ -90,7 +90,7 @@ def step_encode(x, th, mult, lo, hi, steps, out):  # pragma: no cover - compiled
         steps[c] = d
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def step_decode(idx, lv, mult, lo, hi, steps, out):  # pragma: no cover - compiled
     """Decoded samples of a block of indices; updates ``steps`` as
     :func:`step_encode` does.

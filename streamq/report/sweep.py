@@ -471,8 +471,10 @@ def sweep(audio: str | Path, bits: str | int | list[int], schemes: str | list[st
             write_json(out / "sweep.json", res)
             if final and plot:
                 try:
-                    plot_sweep(out / "sweep.png", res)
-                    head["plot"] = "sweep.png"
+                    if plot_sweep(out / "sweep.png", res) is not None:
+                        head["plot"] = "sweep.png"
+                    else:  # no finished point: no plot, and none from an earlier sweep
+                        (out / "sweep.png").unlink(missing_ok=True)
                 except Exception as exc:  # the figures are on disk: only warn
                     print(f"streamq: warning: sweep.png not written ({one_line(exc)})",
                           file=sys.stderr)
@@ -616,9 +618,18 @@ def _cell(v) -> str:
     return str(v)
 
 
+def _written(path: Path, text: str) -> None:
+    """Write ``text`` to ``path`` atomically; a failure is a one-line StreamqError."""
+    from streamq.engine.audiofile import replacing, unwritable
+    try:
+        with replacing(Path(path), newline="") as f:
+            f.write(text)
+    except OSError as exc:
+        raise StreamqError(unwritable(Path(path), exc)) from None
+
+
 def write_csv(path: Path, points: list[dict[str, Any]]) -> None:
     """sweep.csv: one row per point (:data:`CSV_FIELDS`), written atomically."""
-    from streamq.engine.audiofile import replacing
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(CSV_FIELDS)
@@ -628,8 +639,7 @@ def write_csv(path: Path, points: list[dict[str, Any]]) -> None:
             v = p.get(k)
             row.append(f"{v:g}" if k == "block_ms" and v is not None else _cell(v))
         w.writerow(row)
-    with replacing(Path(path), newline="") as f:
-        f.write(buf.getvalue())
+    _written(path, buf.getvalue())
 
 
 def _json_ready(o):
@@ -649,9 +659,7 @@ def json_text(res: dict[str, Any]) -> str:
 
 def write_json(path: Path, res: dict[str, Any]) -> None:
     """sweep.json, written atomically."""
-    from streamq.engine.audiofile import replacing
-    with replacing(Path(path)) as f:
-        f.write(json_text(res))
+    _written(path, json_text(res))
 
 
 # Our own colour cycle for up to 15 schemes (then it repeats with other markers).

@@ -29,8 +29,13 @@ Two measurements:
 Usage::
 
     python tests/bench/bench_live.py [--seconds 10] [--no-live] [--no-offline] [--nodes] [--strict]
+                                     [--scheme trailing|step|gain]
 
 ``--nodes`` adds each node's step time (thread CPU) in the adaptive graph.
+
+``--scheme step`` or ``--scheme gain`` measures the sample-by-sample step
+adaptation or the forward gain adaptation (4 bits) in place of the trailing
+Lloyd-Max.
 
 ``--strict`` exits 1 when a measured p99 misses the target.
 """
@@ -87,6 +92,29 @@ bits = {BITS}
 adapt = "trailing"
 """
 
+# the sample-by-sample step adaptation and the forward gain adaptation (4 bits:
+# the step mode's default multipliers cover 2 to 5 bits)
+SCHEMES = {
+    "trailing": ADAPTIVE,
+    "step": """
+[nodes.enc]
+use = "encoder"
+input = "mic"
+method = "lloyd-max"
+bits = 4
+adapt = "step"
+""",
+    "gain": """
+[nodes.enc]
+use = "encoder"
+input = "mic"
+method = "lloyd-max"
+bits = 4
+adapt = "gain"
+""",
+}
+SCHEME = "trailing"       # --scheme
+
 FIXED = f"""
 [nodes.enc]
 use = "encoder"
@@ -119,7 +147,7 @@ DEVICE
 
 def graph_text(adaptive: bool, device: str | None) -> str:
     dev = f'device = "{device}"' if device else ""
-    return (HEADER + (ADAPTIVE if adaptive else FIXED) + TAIL).replace("DEVICE", dev)
+    return (HEADER + (SCHEMES[SCHEME] if adaptive else FIXED) + TAIL).replace("DEVICE", dev)
 
 
 def programme(seconds: float, seed: int = 11) -> np.ndarray:
@@ -293,7 +321,13 @@ def main() -> int:
     ap.add_argument("--no-offline", action="store_true", help="skip the offline step timing")
     ap.add_argument("--nodes", action="store_true", help="also time each node's step (offline)")
     ap.add_argument("--strict", action="store_true", help="exit 1 if a p99 misses the target")
+    ap.add_argument("--scheme", choices=sorted(SCHEMES), default="trailing",
+                    help="the adaptive encoder measured (default trailing: 8-bit Lloyd-Max "
+                         "retrained every 100 ms; step and gain: 4 bits)")
     args = ap.parse_args()
+    global SCHEME
+    SCHEME = args.scheme
+    print(f"adaptive scheme: {SCHEME}")
     print(f"block {BLOCK} frames at {RATE} Hz = {PERIOD_MS:.3f} ms; target p99 < "
           f"{TARGET * PERIOD_MS:.3f} ms; load average {os.getloadavg()[0]:.2f} "
           f"on {os.cpu_count()} cores")

@@ -92,7 +92,7 @@ def test_every_method_equals_its_own_single_run(four_bit, tmp_path):
         "lloyd-max-gain": 'method = "lloyd-max"\nbits = 4\nadapt = "gain"\ngain_block = "16 ms"',
         "lloyd-max-step": 'method = "lloyd-max"\nbits = 4\nadapt = "step"',
         "uniform-step": 'method = "uniform"\nbits = 4\nadapt = "step"',
-        "lloyd-max-backward": 'method = "lloyd-max"\nbits = 4\nadapt = "backward"\nhop = "100 ms"',
+        "lloyd-max-backward": 'method = "lloyd-max"\nbits = 4\nadapt = "backward"\nwindow = "20 ms"\nhop = "5 ms"',
     }
     short = {"lloyd-max-trailing", "lloyd-max-lookahead"}
     assert got["uniform"]["settings"]["scale"] == pytest.approx(rms, rel=1e-12)

@@ -157,8 +157,9 @@ class EncoderConfig(NodeConfig):
     gain_bits: int = Field(6, ge=1, le=12, description="gain mode: side information per block and "
                                                        "channel (the grid has 2**gain_bits gains "
                                                        "from full scale down)")
-    window: Duration = Field(Duration(500, "ms"), description="backward mode: decoded past used")
-    hop: Duration = Field(Duration(100, "ms"), description="backward mode: time between redesigns")
+    window: Duration = Field(Duration(20, "ms"), description="backward mode: decoded past used")
+    hop: Duration = Field(Duration(5, "ms"), description="backward mode: time between redesigns "
+                                                         "(speech changes within 5 to 20 ms)")
 
     @model_validator(mode="after")
     def _check(self):

@@ -47,7 +47,7 @@ Adaptive schemes on short blocks (the ``block`` length, default in
     no side information (2 to 5 bits, where the default multipliers exist).
 ``lloyd-max-backward``
     the model-fit backward mode: a Gaussian fitted to the decoded past every
-    hop; no side information.
+    hop (block, 5 ms), on a window of four hops; no side information.
 """
 
 from __future__ import annotations
@@ -83,7 +83,7 @@ SCHEMES = {
     "lloyd-max-step": Scheme("Gaussian Lloyd-Max shape, step adapted every sample", None, 2, 5),
     "uniform-step": Scheme("uniform, step adapted every sample", None, 2, 5),
     "lloyd-max-backward": Scheme("Gaussian fitted to the decoded past, {block} ms hop, "
-                                 "500 ms window", 100.0),
+                                 "window = 4 hops", 5.0),
 }
 FIXED_LABELS = {
     "uniform": "fixed uniform, +-{loading:g} RMS",
@@ -200,7 +200,9 @@ def encoder_settings(method: str, bits: int, audio: Path, rms: float, *,
         if method == "lloyd-max-gain":
             return {"method": "lloyd-max", "bits": bits, "adapt": "gain", "gain_block": b}
         if method == "lloyd-max-backward":
-            return {"method": "lloyd-max", "bits": bits, "adapt": "backward", "hop": b}
+            w = _ms(4 * (block_ms if block_ms is not None else SCHEMES[method].block_ms))
+            return {"method": "lloyd-max", "bits": bits, "adapt": "backward", "window": w,
+                    "hop": b}
         return {"method": method.split("-step")[0], "bits": bits, "adapt": "step"}
     s: dict[str, Any] = {"method": method, "bits": bits, "train": str(audio)}
     if method == "ecsq":

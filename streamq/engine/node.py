@@ -89,7 +89,7 @@ class RunContext:
     """What a node may need from the run it is part of."""
 
     graph_file: Path | None
-    out_dir: Path
+    out_dir: Path | None      # None: nothing is written (an in-process chain without a folder)
     sample_rate: int
     live: bool = False
     # Live runs only (None offline, where nodes just call the function):
@@ -104,9 +104,15 @@ class RunContext:
     options: dict[str, Any] = field(default_factory=dict)
 
     def resolve_path(self, path: str | Path) -> Path:
-        """Relative output paths land in the run's output folder."""
+        """Relative output paths land in the run's output folder (a run with
+        none refuses them)."""
         p = Path(path)
-        return p if p.is_absolute() else self.out_dir / p
+        if p.is_absolute():
+            return p
+        if self.out_dir is None:
+            raise StreamqError(f"the relative path '{path}' needs an output folder, and this "
+                               f"chain has none (give Chain an out_dir, or an absolute path)")
+        return self.out_dir / p
 
     def resolve_input(self, path: str | Path) -> Path:
         """Relative input paths are taken relative to the graph file's folder."""

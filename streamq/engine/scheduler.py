@@ -39,13 +39,14 @@ class BuiltGraph:
         return self.graph.nodes
 
 
-def build(graph: Graph, out_dir: Path, *, live: bool = False,
+def build(graph: Graph, out_dir: Path | None, *, live: bool = False,
           offload: Callable[..., Any] | None = None, background: Callable[..., Any] | None = None,
           options: dict | None = None) -> BuiltGraph:
     """Open every node in order; collect every problem before giving up."""
     label = str(graph.source) if graph.source else "<graph>"
     rate = infer_rate(graph)
-    ctx = RunContext(graph_file=graph.source, out_dir=Path(out_dir), sample_rate=rate,
+    ctx = RunContext(graph_file=graph.source, out_dir=None if out_dir is None else Path(out_dir),
+                     sample_rate=rate,
                      live=live, offload=offload, background=background,
                      options=dict(options or {}))
     specs: dict[str, StreamSpec | None] = {}
@@ -121,7 +122,10 @@ def same_output_paths(graph: Graph, ctx: RunContext) -> list[tuple[str, str, Pat
         path = getattr(node.config, "path", None)
         if node.role != "sink" or not isinstance(path, str):
             continue
-        target = ctx.resolve_path(path)
+        try:
+            target = ctx.resolve_path(path)
+        except StreamqError:   # no output folder: the sink itself says so when it opens
+            continue
         try:
             key = target.resolve()
         except (OSError, RuntimeError):  # a loop of links, a name too long: compare as written

@@ -17,7 +17,7 @@ encoder computes it for its drift trigger and reports it.
 
 from __future__ import annotations
 
-from concurrent.futures import BrokenExecutor
+from concurrent.futures import BrokenExecutor, wait
 from typing import Literal
 
 import numpy as np
@@ -29,6 +29,9 @@ from streamq.engine.blocks import Packet, PdfSnapshot, StreamSpec
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
 from streamq.nodes.meter import Series, write_series_csv
+
+#: seconds a live run's end waits for the worker jobs still out
+FINISH_WAIT = 30.0
 
 FITS = ("gaussian", "laplacian", "gamma", "generalized-gaussian")
 CLIP_LEVEL = 1.0 - 2.0 ** -15  # at or beyond: counted as clipped (16-bit full scale)
@@ -361,16 +364,7 @@ class PdfEstimator(Node):
         s = pkt.block.start
         events = list(self.pending)
         self.pending = []
-        while self.jobs and self.jobs[0].done():
-            fut = self.jobs.pop(0)
-            exc = fut.exception()
-            if exc is None:
-                snaps = fut.result()[0]
-                self._took(snaps)
-                events.extend(snaps)
-            else:
-                self.worker_errors += 1
-                self.worker_error = f"{type(exc).__name__}: {exc}"
+        events.extend(self._take_done())
         # hop boundaries t with s < t <= s + frames, each using data up to t
         first = (s // self.H + 1) * self.H
         pos = 0
@@ -395,6 +389,9 @@ class PdfEstimator(Node):
                     continue
                 fut.add_done_callback(self._ready)
                 self.jobs.append(fut)
+                if fut.done():   # a host that waits for each job (streamq.Chain): take it now,
+                    for snap in self._take_done():   # so the next hop's drift sees it, as offline
+                        (events if snap.at_sample < s + frames else self.pending).append(snap)
                 continue
             snaps = self._snapshot(t)
             if t < s + frames:
@@ -404,6 +401,28 @@ class PdfEstimator(Node):
         if pos < frames:
             self._push(data[pos:])
         return Packet(pkt.block, tuple(pkt.events) + tuple(events), pkt.indices)
+
+    def _take_done(self) -> list[PdfSnapshot]:
+        """Live runs: the snapshots of the worker jobs done so far, in order."""
+        events: list[PdfSnapshot] = []
+        while self.jobs and self.jobs[0].done():
+            fut = self.jobs.pop(0)
+            exc = fut.exception()
+            if exc is None:
+                snaps = fut.result()[0]
+                self._took(snaps)
+                events.extend(snaps)
+            else:
+                self.worker_errors += 1
+                self.worker_error = f"{type(exc).__name__}: {exc}"
+        return events
+
+    def finish(self) -> None:
+        """Live runs: wait for the jobs still out (a few hops at most), so the
+        windows file holds every hop, as offline."""
+        if self.jobs:
+            wait(self.jobs, timeout=FINISH_WAIT)
+            self._take_done()
 
     def _lost(self, exc: BaseException) -> None:
         """The worker process is gone (killed, out of memory): like a failed job,
@@ -418,7 +437,7 @@ class PdfEstimator(Node):
 
     def close(self, complete: bool) -> None:
         """Write ``<node id>-windows.csv`` (if any samples came in)."""
-        if not (complete or self.written):
+        if not (complete or self.written) or self.out_dir is None:
             return
         path = self.out_dir / f"{self.id}-windows.csv"
         try:

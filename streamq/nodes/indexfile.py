@@ -54,7 +54,10 @@ class IndexSink(Node):
             if key not in spec.extra:
                 raise self.fail("input", f"node '{self.config.input}' does not say its {key} "
                                          f"(StreamSpec.extra['{key}']); cannot store its indices")
-        self.path = ctx.resolve_path(self.config.path)
+        try:
+            self.path = ctx.resolve_path(self.config.path)
+        except StreamqError as exc:
+            raise self.fail("path", str(exc)) from None
         self.latency = spec.latency
         if ctx.options.get("check_only"):
             return None  # `streamq check` must not create or replace files

@@ -22,6 +22,9 @@ class LiveInputConfig(NodeConfig):
     device: str | int | None = Field(None, description="device name (or part of it) or index; "
                                                        "default: the system's default input")
     channels: int = Field(1, ge=1, le=64, description="input channels")
+    nonfinite: Literal["refuse", "zero"] = Field(
+        "refuse", description="NaN or infinite samples from the host (streamq.Chain, the audio "
+                              "server clients): refuse the block, or replace them with 0")
 
 
 @register

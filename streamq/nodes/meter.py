@@ -534,6 +534,8 @@ class ErrorMeter(Node):
         """The time series and the spectrum as CSV files, each written whole under
         a temporary name and then renamed (a full disk leaves nothing partial)."""
         self.csv_written = []
+        if self.out_dir is None:     # an in-process chain without an output folder
+            return
         path = self.out_dir / f"{self.id}-series.csv"
         try:
             write_series_csv(path, self.rows)

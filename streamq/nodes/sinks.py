@@ -11,6 +11,7 @@ from streamq.engine.audiofile import SafeWriter, format_for
 from streamq.engine.background import BackgroundWriter
 from streamq.engine.node import Node, NodeConfig
 from streamq.engine.registry import register
+from streamq.errors import StreamqError
 
 #: blocks an offline file-sink may hold for its writing thread (memory bound)
 OFFLINE_QUEUE = 4
@@ -60,7 +61,10 @@ class FileSink(Node):
         if spec.kind != "signal":
             raise self.fail("input", f"node '{self.config.input}' gives quantizer indices; "
                                      f"put a decoder before a file-sink (or use an index-sink)")
-        path = ctx.resolve_path(self.config.path)
+        try:
+            path = ctx.resolve_path(self.config.path)
+        except StreamqError as exc:
+            raise self.fail("path", str(exc)) from None
         self._check_format(path)
         self.latency = spec.latency
         self.writer = SafeWriter(path, spec.rate, spec.channels, self.config.subtype,

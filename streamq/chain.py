@@ -1,0 +1,354 @@
+"""``streamq.Chain``: run a graph in-process, block by block.
+
+A chain is a validated graph whose ``live-input`` nodes are fed by the host
+(a Python loop, an audio callback, an audio server client, a media pipeline)
+and whose ``live-output`` nodes hand their blocks back::
+
+    import streamq
+
+    with streamq.Chain.load("graphs/live-monitor.toml") as chain:
+        for block in blocks:                  # (frames, channels) float32 or float64
+            out = chain.process(block)        # float32 (frames, channels)
+    print(chain.report["meters"])
+
+The chain never prints, never exits the process, and every thread or process
+it starts ends with :meth:`Chain.close`. Every schedule is counted in samples
+(rule 1 of the design), so the blocks may have any size and the results do not
+depend on how the host cuts them.
+
+Two ways to run, chosen by ``realtime``:
+
+``realtime=False`` (default: a host that can wait, e.g. a loop over a file)
+    Every node steps in the caller's thread, in graph order; PDF snapshots and
+    codebook designs run in a worker process, and :meth:`process` waits for
+    each one before it goes on, so every codebook applies at exactly the
+    sample an offline run applies it: decoded samples and report figures
+    equal those of ``streamq run`` on the same graph with a ``file-source`` in
+    place of the ``live-input``, whatever the block sizes.
+``realtime=True`` (an audio callback that must never wait)
+    :meth:`process` steps only what the outputs need; estimators, meters and
+    sinks follow on a thread; designs arrive from the worker process when they
+    are ready and apply at their due sample (``apply_after``) or, if late, at
+    the next block (counted in the encoder's ``late_codebooks``).
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import concurrent.futures.process
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from streamq.errors import StreamqError
+
+#: the most frames one call of :meth:`Chain.process` takes
+MAX_FRAMES = 65_536
+
+
+class Chain:
+    """A graph run in-process: :meth:`open`, :meth:`process` blocks, :meth:`close`.
+
+    Build one with :meth:`load` (a graph file) or :meth:`from_toml` (its text).
+
+    Parameters
+    ----------
+    graph : streamq.engine.graph.Graph
+        A validated graph.
+    out_dir : str or Path, optional
+        Where sinks with relative paths, the meters' CSV files and
+        ``report.json`` go. None (the default): nothing is written to disk,
+        and a sink with a relative ``path`` is refused when the chain opens.
+    realtime : bool
+        See the module docstring.
+
+    Attributes
+    ----------
+    inputs : tuple of str
+        The ids of the ``live-input`` nodes :meth:`process` feeds.
+    outputs : tuple of str
+        The ids of the ``live-output`` nodes whose blocks it returns.
+    sample_rate : int
+    report : dict or None
+        After :meth:`close`: what ``report.json`` holds.
+    """
+
+    def __init__(self, graph, out_dir: str | Path | None = None, *, realtime: bool = False):
+        from streamq.nodes.live import LiveInput, LiveOutput
+        self.graph = graph
+        self.out_dir = None if out_dir is None else Path(out_dir)
+        self.realtime = bool(realtime)
+        self.inputs = tuple(nid for nid in graph.order
+                            if isinstance(graph.nodes[nid], LiveInput))
+        self.outputs = tuple(nid for nid in graph.order
+                             if isinstance(graph.nodes[nid], LiveOutput))
+        if not self.inputs:
+            raise StreamqError(f"{graph.source or '<graph>'}: a chain is fed through a "
+                               f"live-input node; this graph has none")
+        self.state = "new"           # "new" -> "open" -> "closed"
+        self.report: dict[str, Any] | None = None
+        self.position = 0            # frames processed
+        self.built = None
+        self._live = None            # realtime: the callback/follower split
+        self._workers: list = []
+        self._t0 = 0.0
+
+    # -- building ------------------------------------------------------------------
+    @classmethod
+    def load(cls, path: str | Path, out_dir: str | Path | None = None, overrides=(), *,
+             realtime: bool = False) -> "Chain":
+        """A chain from a graph file; ``overrides`` as ``--set`` takes them
+        (``"enc.bits=6"``). Raises :class:`StreamqError` with the one-line
+        messages of ``streamq check``."""
+        from streamq.engine.graph import load_graph
+        return cls(load_graph(path, list(overrides), precheck=True), out_dir, realtime=realtime)
+
+    @classmethod
+    def from_toml(cls, text: str, out_dir: str | Path | None = None, overrides=(), *,
+                  source: str | Path | None = None, realtime: bool = False) -> "Chain":
+        """A chain from graph text (``source``: the file name its relative
+        input paths are taken from, and that messages name)."""
+        from streamq.engine.graph import parse_graph
+        graph = parse_graph(text, None if source is None else Path(source), list(overrides),
+                            precheck=True)
+        return cls(graph, out_dir, realtime=realtime)
+
+    @property
+    def sample_rate(self) -> int:
+        from streamq.engine.graph import infer_rate
+        return self.built.ctx.sample_rate if self.built is not None else infer_rate(self.graph)
+
+    def channels(self, node_id: str | None = None) -> int:
+        """The channel count of a live-input (the only one by default)."""
+        nid = node_id if node_id is not None else self.inputs[0]
+        return int(self.graph.nodes[nid].config.channels)
+
+    def output_channels(self, node_id: str | None = None) -> int:
+        """The channel count of a live-output (open chains only)."""
+        nid = node_id if node_id is not None else self.outputs[0]
+        return int(self.graph.nodes[nid].C)
+
+    @property
+    def latency(self) -> int:
+        """Frames by which the first live-output lags its input (open chains):
+        the lookahead the graph declares (e.g. a gain-adaptive encoder's block)."""
+        self._require_open("latency")
+        if not self.outputs:
+            return 0
+        return int(self.built.specs[self.graph.nodes[self.outputs[0]].config.input].latency)
+
+    # -- life cycle ----------------------------------------------------------------
+    def open(self) -> "Chain":
+        """Open every node (and the worker process, when the graph designs)."""
+        if self.state != "new":
+            raise StreamqError(f"Chain.open: the chain is {self.state}; a chain opens once")
+        from streamq.engine.scheduler import build
+        offload = background = None
+        if any(n.kind == "pdf-estimator" for n in self.graph.nodes.values()):
+            from streamq.live.runner import make_workers
+            try:
+                designer, executor = make_workers()
+            except concurrent.futures.process.BrokenProcessPool:
+                self.state = "closed"
+                raise StreamqError("Chain.open: the design worker process could not start; a "
+                                   "script that opens a chain with a pdf-estimator must run "
+                                   "its code under `if __name__ == \"__main__\":` (Python "
+                                   "starts worker processes by importing the script)") from None
+            self._workers = [designer, executor]
+            if self.realtime:
+                offload, background = designer.submit, executor.submit
+            else:
+                offload = _waiting(designer.submit)
+        elif self.realtime:
+            executor = concurrent.futures.ThreadPoolExecutor(
+                max_workers=1, thread_name_prefix="streamq-meter")
+            self._workers = [executor]
+            background = executor.submit
+        try:
+            self.built = build(self.graph, self.out_dir, live=True, offload=offload,
+                               background=background)
+        except BaseException:
+            self._stop_workers()
+            self.state = "closed"
+            raise
+        if self.realtime:
+            from streamq.live.chain import LiveChain
+            self._live = LiveChain(self.built)
+            self._live.start()
+        self.state = "open"
+        self._t0 = time.perf_counter()
+        return self
+
+    def process(self, block):
+        """Push one block through the chain.
+
+        Parameters
+        ----------
+        block : array_like or dict
+            float32 or float64 samples shaped (frames, channels), 1 to 65,536
+            frames (a 1-D array for a one-channel input); a dict keyed by
+            live-input id when the graph has several (all the same length).
+
+        Returns
+        -------
+        numpy.ndarray, dict or None
+            The live-output's block as a new float32 array (frames, channels);
+            a dict keyed by node id when there are several; None when there is
+            none.
+
+        Raises
+        ------
+        StreamqError
+            A block of the wrong shape, type or length, or non-finite samples
+            where the live-input's ``nonfinite`` is ``"refuse"``: nothing of
+            it was processed, and the chain stays usable. A failure inside a
+            node closes the chain (its report says ``"complete": false``).
+        """
+        self._require_open("process")
+        data = self._take(block)
+        frames = next(iter(data.values())).shape[0]
+        try:
+            for nid, x in data.items():
+                self.graph.nodes[nid].feed(x)
+            if self._live is not None:
+                if self._live.error is not None:
+                    raise self._live.error
+                self._live.step(frames)
+            else:
+                self._step_all(frames)
+        except BaseException:
+            self.position += frames
+            self._close(complete=False)
+            raise
+        self.position += frames
+        outs = {nid: np.array(self.graph.nodes[nid].block, dtype=np.float32)
+                for nid in self.outputs}
+        if not outs:
+            return None
+        return outs if len(outs) > 1 else next(iter(outs.values()))
+
+    def close(self) -> dict[str, Any]:
+        """Finish the stream, close every node, stop every thread and process the
+        chain started; returns (and keeps in :attr:`report`) the report."""
+        if self.state == "new":
+            self.state = "closed"
+            return self.report or {}
+        if self.state == "closed":
+            return self.report or {}
+        return self._close(complete=True)
+
+    def __enter__(self) -> "Chain":
+        return self.open() if self.state == "new" else self
+
+    def __exit__(self, kind, exc, tb) -> None:
+        if self.state == "open":
+            self._close(complete=kind is None)
+
+    # -- inside --------------------------------------------------------------------
+    def _require_open(self, what: str) -> None:
+        if self.state == "new":
+            raise StreamqError(f"Chain.{what}: the chain is not open yet; call open() or use "
+                               f"it in a with block")
+        if self.state == "closed":
+            raise StreamqError(f"Chain.{what}: the chain is closed")
+
+    def _take(self, block) -> dict[str, np.ndarray]:
+        """The block(s) checked, per live-input id."""
+        if isinstance(block, dict):
+            unknown = sorted(set(block) - set(self.inputs))
+            missing = [nid for nid in self.inputs if nid not in block]
+            if unknown or missing:
+                raise StreamqError(f"Chain.process: give one block per live-input "
+                                   f"({', '.join(self.inputs)})"
+                                   + (f"; unknown: {', '.join(map(str, unknown))}" if unknown
+                                      else f"; missing: {', '.join(missing)}"))
+            items = [(nid, block[nid]) for nid in self.inputs]
+        elif len(self.inputs) > 1:
+            raise StreamqError(f"Chain.process: the graph has {len(self.inputs)} live-inputs "
+                               f"({', '.join(self.inputs)}); give a dict of blocks keyed by id")
+        else:
+            items = [(self.inputs[0], block)]
+        out = {}
+        frames = None
+        for nid, x in items:
+            node = self.graph.nodes[nid]
+            x = np.asarray(x)
+            if x.dtype not in (np.float32, np.float64):
+                raise StreamqError(f"Chain.process: node '{nid}': give float32 or float64 "
+                                   f"samples, got {x.dtype}")
+            C = node.config.channels
+            if x.ndim == 1 and C == 1:
+                x = x[:, None]
+            if x.ndim != 2 or x.shape[1] != C:
+                raise StreamqError(f"Chain.process: node '{nid}' takes (frames, {C}) blocks, "
+                                   f"got shape {x.shape}")
+            n = x.shape[0]
+            if not 1 <= n <= MAX_FRAMES:
+                raise StreamqError(f"Chain.process: node '{nid}': give 1 to {MAX_FRAMES} "
+                                   f"frames per call, got {n}")
+            if frames is not None and n != frames:
+                raise StreamqError("Chain.process: every live-input's block must have the "
+                                   "same length")
+            frames = n
+            bad = ~np.isfinite(x)
+            if bad.any():
+                if node.config.nonfinite == "refuse":
+                    f, c = np.argwhere(bad)[0]
+                    raise StreamqError(f"Chain.process: node '{nid}': non-finite sample at "
+                                       f"sample {self.position + int(f)}, channel {int(c)} (set "
+                                       f"its nonfinite = \"zero\" to replace such samples "
+                                       f"with 0)")
+                x = np.where(bad, 0.0, x)
+            out[nid] = x
+        return out
+
+    def _step_all(self, frames: int) -> None:
+        from streamq.engine.scheduler import _step_all
+        _step_all(self.built, frames)
+
+    def _close(self, complete: bool) -> dict[str, Any]:
+        from streamq.engine.scheduler import make_report, write_report
+        self.state = "closed"
+        failure: BaseException | None = None
+        try:
+            if self._live is not None:
+                self._live.stop()
+                if self._live.error is not None and complete:
+                    failure = self._live.error
+                    complete = False
+            if complete:
+                for nid in self.built.graph.order:
+                    self.built.graph.nodes[nid].finish()
+        except BaseException as exc:
+            failure, complete = exc, False
+        for nid in self.built.graph.order:
+            try:
+                self.built.graph.nodes[nid].close(complete)
+            except BaseException as exc:
+                failure = failure or exc
+        self._stop_workers()
+        seconds = time.perf_counter() - self._t0
+        self.report = make_report(self.built, complete=complete, samples=self.position,
+                                  seconds=seconds)
+        if self.out_dir is not None:
+            write_report(self.out_dir, self.report)
+        if failure is not None:
+            raise failure
+        return self.report
+
+    def _stop_workers(self) -> None:
+        for w in self._workers:
+            w.shutdown(wait=True, cancel_futures=True)
+        self._workers = []
+
+
+def _waiting(submit):
+    """An ``offload`` that returns only once the job is done: the job still runs
+    in the worker process, and its result is there when the node looks."""
+    def offload(fn, *args):
+        fut = submit(fn, *args)
+        concurrent.futures.wait([fut])
+        return fut
+    return offload

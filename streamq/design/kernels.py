@@ -414,7 +414,12 @@ def window_segments(ref, x, window, part, pos, out):  # pragma: no cover - compi
     N = window.shape[0]
     K = out.shape[1]
     if K > 0:
-        out[:, 0, :pos] = part[:, :pos]
+        # element by element: a slice assignment here would compile numba's
+        # shape-mismatch error message (string formatting), several seconds
+        # of compiling on a first run for a copy of a few rows
+        for s in range(part.shape[0]):
+            for j in range(pos):
+                out[s, 0, j] = part[s, j]
     for c in range(C):
         i = 0
         g = 0

@@ -476,3 +476,19 @@ def test_interrupt_leaves_valid_partial_output(tmp_path, signum):
     assert report["complete"] is False
     assert report["samples"] == frames
     assert report["outputs"]["keep"]["frames"] == frames
+
+
+def test_device_table_has_a_plain_default_column():
+    """`streamq devices`: which devices are the system's defaults, said in words."""
+    from streamq.live.devices import device_table
+    devs = [{"index": 0, "name": "card", "host_api": "ALSA", "inputs": 2, "outputs": 2,
+             "default_rate": 48000.0, "default_input": True, "default_output": True},
+            {"index": 1, "name": "mic", "host_api": "ALSA", "inputs": 1, "outputs": 0,
+             "default_rate": 44100.0, "default_input": False, "default_output": False},
+            {"index": 2, "name": "phones", "host_api": "ALSA", "inputs": 0, "outputs": 2,
+             "default_rate": 48000.0, "default_input": False, "default_output": True}]
+    lines = device_table(devs)
+    assert lines[0].split()[-1] == "default"
+    assert lines[1].endswith("in+out") and lines[1].startswith("0 ")
+    assert lines[2].endswith("44100 Hz") and lines[3].endswith("out")
+    assert not any("<" in ln or ">" in ln for ln in lines)

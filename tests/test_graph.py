@@ -644,3 +644,27 @@ def test_optimal_on_histograms_has_a_level_limit(tmp_path, adapt, size, bad):
         assert_names(line, g, "node 'enc'", f"field '{field}'", "at most 4096 levels")
     else:
         load_graph(write_graph(tmp_path, text))
+
+
+def test_wiring_checked_together_with_field_problems(tmp_path):
+    """One check lists everything: an unknown kind in one node, and in another a field
+    problem and an input naming no node (the dangling input used to go unsaid until the
+    fields passed)."""
+    text = """
+[graph]
+name = "many"
+[nodes.feed]
+use = "tone-maker"
+[nodes.m]
+use = "error-meter"
+reference = "feed"
+input = "ghost"
+frame = "bad"
+"""
+    with pytest.raises(GraphError) as err:
+        parse_graph(text, tmp_path / "g.toml")
+    problems = err.value.problems
+    assert any("node 'feed', field 'use': unknown node kind" in p for p in problems)
+    assert any("node 'm', field 'frame'" in p for p in problems)
+    assert any("node 'm', field 'input': no node named 'ghost'" in p for p in problems)
+    assert len(problems) == 3

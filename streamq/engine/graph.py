@@ -270,6 +270,7 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
     kinds = registry.kinds()
     adapter = _config_adapter(kinds)
     configs: dict[str, NodeConfig] = {}
+    unfinished: dict[str, tuple[str, dict]] = {}   # known kind, fields with problems
     for node_id, table in nodes_raw.items():
         where = f"{label}: node '{node_id}'"
         if not _ID.match(node_id):
@@ -293,10 +294,12 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
             continue
         wrong = _wrong_types(kinds[use].Config, table)
         problems.extend(f"{where}, field '{fld}': {msg}" for fld, msg in wrong.items())
+        unfinished[node_id] = (use, table)
         try:
             config = adapter.validate_python(table)
             if not wrong:
                 configs[node_id] = config
+                del unfinished[node_id]
         except ValidationError as exc:
             for err in exc.errors():
                 loc = [str(p) for p in err["loc"]]
@@ -333,6 +336,15 @@ def validate_graph(raw: dict[str, Any], source: Path | None = None,
             if fld not in node.optional_inputs and getattr(node.config, fld, None) is None:
                 if nid in configs:  # pydantic already reported it when required
                     problems.append(f"{label}: node '{nid}', field '{fld}': missing (required)")
+    # a node whose fields have problems still has its wiring checked, so that one
+    # `streamq check` lists everything
+    for nid, (use, table) in unfinished.items():
+        for fld in kinds[use].inputs:
+            ref = table.get(fld)
+            said = f"{label}: node '{nid}', field '{fld}':"
+            if isinstance(ref, str) and ref not in all_ids and \
+                    not any(p.startswith(said) for p in problems):
+                problems.append(f"{said} no node named '{ref}'")
     if header.batch_input is not None and header.batch_input not in all_ids:
         problems.append(f"{label}: [graph], field 'batch_input': no node named '{header.batch_input}'")
     order, cycle = _topological_order(nodes)

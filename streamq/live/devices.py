@@ -142,20 +142,21 @@ def resolve_device(device: int | str | None, direction: str, channels: int = 1, 
 
 
 def device_table(devices: list[dict[str, Any]]) -> list[str]:
-    """The lines ``streamq devices`` prints."""
-    rows = [("#", "name", "host API", "in", "out", "default rate")]
+    """The lines ``streamq devices`` prints: a ``default`` column says ``in``,
+    ``out`` or ``in+out`` for the system's default devices."""
+    rows = [("#", "name", "host API", "in", "out", "default rate", "default")]
     for d in devices:
-        mark = ("<" if d["default_input"] else " ") + (">" if d["default_output"] else " ")
-        rows.append((f"{d['index']}{mark}", d["name"], d["host_api"], str(d["inputs"]),
-                     str(d["outputs"]), f"{d['default_rate']:g} Hz"))
+        default = "+".join(w for w, on in (("in", d["default_input"]),
+                                           ("out", d["default_output"])) if on)
+        rows.append((str(d["index"]), d["name"], d["host_api"], str(d["inputs"]),
+                     str(d["outputs"]), f"{d['default_rate']:g} Hz", default))
     widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    right = (False, False, False, True, True, True, False)
     lines = []
     for r in rows:
-        cells = [r[0].ljust(widths[0]), r[1].ljust(widths[1]), r[2].ljust(widths[2]),
-                 r[3].rjust(widths[3]), r[4].rjust(widths[4]), r[5].rjust(widths[5])]
+        cells = [c.rjust(w) if rj else c.ljust(w) for c, w, rj in zip(r, widths, right)]
         lines.append("  ".join(cells).rstrip())
-    lines.append("'<' marks the default input device, '>' the default output device; "
-                 "give a device to a live node by index or by (part of) its name")
+    lines.append("give a device to a live node by index or by (part of) its name")
     return lines
 
 

@@ -164,3 +164,30 @@ def test_drift_parts_have_their_character():
     # (the scene clips at 1 - 2^-15; measured peak 0.925).
     assert np.all(_short_term_dbfs(room) > -70.0)
     assert np.abs(band).max() < 0.99
+
+
+@pytest.mark.parametrize("numtaps, cutoff, pass_zero", [(31, 0.25, True),
+                                                        (63, [0.012, 0.16], False),
+                                                        (41, 0.5, True), (21, [0.2, 0.7], False)])
+def test_windowed_sinc_equals_scipy_firwin_bit_for_bit(numtaps, cutoff, pass_zero):
+    from scipy import signal as sps
+    left, right = (0.0, cutoff) if pass_zero else cutoff
+    # scipy.signal.firwin with its defaults (Hamming window, scaled): reference implementation
+    want = sps.firwin(numtaps, cutoff, pass_zero=pass_zero)
+    got = scenes.windowed_sinc(numtaps, left, right)
+    assert got.tobytes() == want.tobytes()
+    assert not got.flags.writeable
+
+
+def test_drift_scene_parts_made_only_where_heard_match_any_cut():
+    """Each part is made only over the stretch where its weight is above zero;
+    the samples do not depend on where a block starts inside or outside it."""
+    total = 3 * RATE
+    whole = scenes.render("drift", seed=3, channel=1, start=0, stop=total, rate=RATE, total=total,
+                          frequency=1000.0, level_dbfs=LEVEL_DBFS, pdf="gaussian")
+    for block in (1000, 24_001, 47_999):
+        cut = np.concatenate([
+            scenes.render("drift", seed=3, channel=1, start=a, stop=min(a + block, total),
+                          rate=RATE, total=total, frequency=1000.0, level_dbfs=LEVEL_DBFS,
+                          pdf="gaussian") for a in range(0, total, block)])
+        assert cut.tobytes() == whole.tobytes()

@@ -50,6 +50,50 @@ def _filtered_noise(seed: int, channel: int, start: int, stop: int, taps: np.nda
     return np.convolve(raw, taps, mode="valid")
 
 
+def windowed_sinc(numtaps: int, left: float, right: float) -> np.ndarray:
+    """A linear-phase FIR filter passing ``(left, right)`` (fractions of the
+    Nyquist frequency; ``left = 0`` makes a low-pass), by the window method.
+
+    The ideal band's impulse response is cut to ``numtaps`` taps, weighted by a
+    symmetric Hamming window (0.54 - 0.46 cos) and scaled to unit gain at the
+    band's center (at 0 for a low-pass). The arithmetic follows
+    ``scipy.signal.firwin(numtaps, ...)`` with its defaults step by step, so the
+    taps are the same to the last bit (``tests/test_scenes.py`` checks); it is
+    written out here because importing ``scipy.signal`` costs about a second.
+
+    Parameters
+    ----------
+    numtaps : int
+        Filter length (odd).
+    left, right : float
+        Band edges, ``0 <= left < right < 1``.
+
+    Returns
+    -------
+    numpy.ndarray
+        The ``numtaps`` taps, float64, read-only.
+    """
+    alpha = 0.5 * (numtaps - 1)
+    m = np.arange(0, numtaps, dtype=np.float64) - alpha
+    h = np.zeros(numtaps)
+    h += right * np.sinc(right * m)
+    h -= left * np.sinc(left * m)
+    fac = np.linspace(-np.pi, np.pi, numtaps)
+    win = np.zeros(numtaps)
+    win += 0.54 * np.cos(0 * fac)
+    win += (1.0 - 0.54) * np.cos(1 * fac)
+    h *= win
+    center = 0.0 if left == 0 else 0.5 * (left + right)
+    h /= np.sum(h * np.cos(np.pi * m * center))
+    h.setflags(write=False)
+    return h
+
+
+# the drift scene's two filters (constants: made once, never written)
+_ROOM_TAPS = windowed_sinc(31, 0.0, 0.25)
+_VOICE_TAPS = windowed_sinc(63, 0.012, 0.16)
+
+
 def _db(level_dbfs: float) -> float:
     return 10.0 ** (level_dbfs / 20.0)
 
@@ -98,34 +142,48 @@ def drift_scene(seed: int, channel: int, start: int, stop: int, rate: int, total
         down = np.clip((center_hi - n) / fade + 0.5, 0.0, 1.0) if center_hi < total else np.ones(len(n))
         return np.minimum(up, down)
 
-    from scipy import signal as sps  # here, not at import: batch workers never need it
+    def part(make, w: np.ndarray) -> np.ndarray:
+        """``make(i, j) * w[i:j]`` where the part's weight is above zero (one
+        stretch: the weights rise, hold and fall), zeros elsewhere; each sample
+        is a function of its index alone, so only the heard stretch is made."""
+        on = np.flatnonzero(w)
+        term = np.zeros(len(n))
+        if on.size:
+            i, j = int(on[0]), int(on[-1]) + 1
+            term[i:j] = make(i, j) * w[i:j]
+        return term
 
     # Part 1: room tone: filtered hiss plus 50 Hz hum and its 3rd harmonic.
-    lp = sps.firwin(31, 0.25)
+    lp = _ROOM_TAPS
     room = 0.0008 * _filtered_noise(seed, channel, start, stop, lp, 1) / np.sqrt(np.sum(lp ** 2))
     room += tone(t, 50.0, -66.0) + tone(t, 150.0, -74.0)
 
     # Part 2: speech-like bursts: band-passed noise under a 4-5 Hz syllable
     # envelope, in phrases separated by short breaths (about 0.3 s every 2.6 s,
     # with 20 ms ramps), giving a peaky amplitude distribution.
-    bp = sps.firwin(63, [0.012, 0.16], pass_zero=False)
-    voiced = _filtered_noise(seed, channel, start, stop, bp, 2) / np.sqrt(np.sum(bp ** 2))
-    syll = 0.15 + 0.85 * np.maximum(0.0, np.sin(2 * np.pi * 4.3 * t + 0.7 * np.sin(2 * np.pi * 0.37 * t))) ** 2
-    cycle = np.mod(t + 0.4 * channel, 2.6)
-    phrase = np.clip(np.minimum(cycle - 0.3, 2.6 - cycle) / 0.02, 0.0, 1.0)
-    pitch = 0.5 * tone(t, 140.0 + 20.0 * np.sin(2 * np.pi * 0.5 * t), 0.0)
-    speech = 0.07 * syll * phrase * (voiced + pitch)
+    def speech(i: int, j: int) -> np.ndarray:
+        tt = t[i:j]
+        bp = _VOICE_TAPS
+        voiced = _filtered_noise(seed, channel, start + i, start + j, bp, 2) / np.sqrt(np.sum(bp ** 2))
+        syll = 0.15 + 0.85 * np.maximum(0.0, np.sin(2 * np.pi * 4.3 * tt + 0.7 * np.sin(2 * np.pi * 0.37 * tt))) ** 2
+        cycle = np.mod(tt + 0.4 * channel, 2.6)
+        phrase = np.clip(np.minimum(cycle - 0.3, 2.6 - cycle) / 0.02, 0.0, 1.0)
+        pitch = 0.5 * tone(tt, 140.0 + 20.0 * np.sin(2 * np.pi * 0.5 * tt), 0.0)
+        return 0.07 * syll * phrase * (voiced + pitch)
 
     # Part 3: band: a major chord with harmonics, slow tremolo, and a noise bed.
-    band = np.zeros(len(n))
-    for f0 in (110.0, 138.6, 164.8, 220.0):
-        for h, a in ((1, 1.0), (2, 0.5), (3, 0.33), (5, 0.2)):
-            band += a * np.sin(2 * np.pi * f0 * h * t + f0 * 0.01 * h)
-    band *= 0.085 * (1.0 + 0.3 * np.sin(2 * np.pi * 1.7 * t))
-    band += 0.09 * _noise(seed, channel, start, stop, "laplacian", 3)
+    def band(i: int, j: int) -> np.ndarray:
+        tt = t[i:j]
+        out = np.zeros(j - i)
+        for f0 in (110.0, 138.6, 164.8, 220.0):
+            for h, a in ((1, 1.0), (2, 0.5), (3, 0.33), (5, 0.2)):
+                out += a * np.sin(2 * np.pi * f0 * h * tt + f0 * 0.01 * h)
+        out *= 0.085 * (1.0 + 0.3 * np.sin(2 * np.pi * 1.7 * tt))
+        out += 0.09 * _noise(seed, channel, start + i, start + j, "laplacian", 3)
+        return out
 
     # the room tone stays under everything: no part of the program is digital silence
-    out = room + speech * weight(third, 2 * third) + band * weight(2 * third, total)
+    out = room + part(speech, weight(third, 2 * third)) + part(band, weight(2 * third, total))
     return np.clip(out, -1.0, 1.0 - 2.0 ** -15)
 
 

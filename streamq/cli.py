@@ -137,7 +137,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_nodes)
 
     for modname in ("streamq.design.command", "streamq.report.compare", "streamq.report.sweep",
-                    "streamq.live.devices", "streamq.batch"):
+                    "streamq.live.devices", "streamq.batch", "streamq.gst.command"):
         try:
             mod = __import__(modname, fromlist=["add_parser"])
         except ModuleNotFoundError as exc:

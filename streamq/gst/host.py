@@ -131,12 +131,12 @@ class PipelineChain:
             raise StreamqError(
                 f"{self.source}: [graph], field 'sample_rate': the graph runs at "
                 f"{self.sample_rate} Hz, the stream comes at {rate} Hz (resample before "
-                f"streamq-chain, e.g. with audioresample)")
+                f"streamq-chain: audioresample ! audio/x-raw,rate={self.sample_rate})")
         if channels != self.in_channels:
             raise StreamqError(
                 f"{self.source}: node '{self.input_id}', field 'channels': the live-input takes "
                 f"{self.in_channels} channel(s), the stream has {channels} (convert before "
-                f"streamq-chain, e.g. with audioconvert)")
+                f"streamq-chain: audioconvert ! audio/x-raw,channels={self.in_channels})")
 
     @property
     def latency_seconds(self) -> float:

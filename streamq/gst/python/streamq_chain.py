@@ -140,11 +140,12 @@ class StreamqChainElement(GstBase.BaseTransform):
                    "stream, besides out-dir's report.json", None, GObject.ParamFlags.READWRITE),
     }
 
+    host = None          # a streamq.gst.host.PipelineChain between start and stop
+    failed = False       # an error was posted: no report at the end of the stream
+
     def __init__(self):
         super().__init__()
         self.props_ = {"graph": None, "set": None, "out-dir": None, "report": None}
-        self.host = None          # a streamq.gst.host.PipelineChain between start and stop
-        self.failed = False
 
     # -- properties -------------------------------------------------------------------
     def do_get_property(self, prop):
@@ -158,7 +159,9 @@ class StreamqChainElement(GstBase.BaseTransform):
 
     # -- errors -----------------------------------------------------------------------
     def _fail(self, text: str, where: str) -> None:
-        """Post an element error (one line, no traceback) on the bus."""
+        """Post an element error (one line, no traceback) on the bus, once."""
+        if self.failed:
+            return
         self.failed = True
         self.message_full(Gst.MessageType.ERROR, Gst.ResourceError.quark(),
                           Gst.ResourceError.SETTINGS, text,

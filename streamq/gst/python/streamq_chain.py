@@ -283,7 +283,7 @@ class StreamqChainElement(GstBase.BaseTransform):
         return GstBase.BaseTransform.do_sink_event(self, event)
 
     # -- latency ----------------------------------------------------------------------
-    def do_base_transform_query(self, direction, query):   # BaseTransform's query, not Element's
+    def do_gst_base_transform_query(self, direction, query):   # not GstElement.query
         if query.type != Gst.QueryType.LATENCY or direction != Gst.PadDirection.SRC:
             return GstBase.BaseTransform.do_query(self, direction, query)
         if not GstBase.BaseTransform.do_query(self, direction, query):

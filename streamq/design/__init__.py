@@ -26,50 +26,76 @@ Main pieces
   :func:`pcm_sine_snr_db`.
 """
 
-from streamq.design.api import METHODS, SAMPLE_EXACT_LIMIT, design
-from streamq.design.codebook import CODEBOOK_FORMAT, Codebook, index_dtype
-from streamq.design.compander import (
-    G711_LAWS,
-    a_law_compress,
-    a_law_expand,
-    compander_codebook,
-    g711_code_map,
-    g711_codebook,
-    g711_decode,
-    g711_encode,
-    mu_law_compress,
-    mu_law_expand,
-    optimal_compander_histogram,
-    optimal_compander_pdf,
-)
-from streamq.design.ecsq import ecsq_histogram, ecsq_pdf
-from streamq.design.lloyd import (
-    HistogramPrefix,
-    histogram_prefix,
-    lloyd_max_histogram,
-    lloyd_max_pdf,
-    lloyd_max_samples,
-    sample_histogram,
-)
-from streamq.design.optimal import MAX_DP_LEVELS, MAX_DP_POINTS, optimal_histogram
-from streamq.design.pdfs import PDF_NAMES, PdfModel, pdf_histogram, pdf_model
-from streamq.design.report import (
-    DesignReport,
-    evaluate_histogram,
-    evaluate_pdf,
-    index_entropy,
-    snr_db,
-)
-from streamq.design.theory import (
-    ECSQ_GAP_BITS,
-    ECSQ_GAP_DB,
-    gaussian_rd_mse,
-    gaussian_rd_snr_db,
-    panter_dite_mse,
-    pcm_sine_snr_db,
-    pcm_sine_snr_rule_db,
-)
-from streamq.design.uniform import UNIFORM_KINDS, uniform_codebook, uniform_histogram, uniform_pdf
+# Names are imported from their modules on first use (PEP 562), so that
+# ``import streamq.design.kernels`` or a command that needs one helper does not
+# pay for the whole library and the scipy modules behind it (about a second).
+_HOME = {
+    "METHODS": "api",
+    "SAMPLE_EXACT_LIMIT": "api",
+    "design": "api",
+    "CODEBOOK_FORMAT": "codebook",
+    "Codebook": "codebook",
+    "index_dtype": "codebook",
+    "G711_LAWS": "compander",
+    "a_law_compress": "compander",
+    "a_law_expand": "compander",
+    "compander_codebook": "compander",
+    "g711_code_map": "compander",
+    "g711_codebook": "compander",
+    "g711_decode": "compander",
+    "g711_encode": "compander",
+    "mu_law_compress": "compander",
+    "mu_law_expand": "compander",
+    "optimal_compander_histogram": "compander",
+    "optimal_compander_pdf": "compander",
+    "ecsq_histogram": "ecsq",
+    "ecsq_pdf": "ecsq",
+    "HistogramPrefix": "lloyd",
+    "histogram_prefix": "lloyd",
+    "lloyd_max_histogram": "lloyd",
+    "lloyd_max_pdf": "lloyd",
+    "lloyd_max_samples": "lloyd",
+    "sample_histogram": "lloyd",
+    "MAX_DP_LEVELS": "optimal",
+    "MAX_DP_POINTS": "optimal",
+    "optimal_histogram": "optimal",
+    "PDF_NAMES": "pdfs",
+    "PdfModel": "pdfs",
+    "pdf_histogram": "pdfs",
+    "pdf_model": "pdfs",
+    "DesignReport": "report",
+    "evaluate_histogram": "report",
+    "evaluate_pdf": "report",
+    "index_entropy": "report",
+    "snr_db": "report",
+    "ECSQ_GAP_BITS": "theory",
+    "ECSQ_GAP_DB": "theory",
+    "gaussian_rd_mse": "theory",
+    "gaussian_rd_snr_db": "theory",
+    "panter_dite_mse": "theory",
+    "pcm_sine_snr_db": "theory",
+    "pcm_sine_snr_rule_db": "theory",
+    "UNIFORM_KINDS": "uniform",
+    "uniform_codebook": "uniform",
+    "uniform_histogram": "uniform",
+    "uniform_pdf": "uniform",
+}
+
+
+def __getattr__(name: str):
+    """Import a public name's module on first use and keep the name here."""
+    home = _HOME.get(name)
+    if home is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    import importlib
+    value = getattr(importlib.import_module(f"{__name__}.{home}"), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))
+
 
 __all__ = [
     "METHODS",

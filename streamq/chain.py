@@ -92,6 +92,8 @@ class Chain:
         self.position = 0            # frames processed
         self.built = None
         self._live = None            # realtime: the callback/follower split
+        self._in_nodes: list = []    # (open) the live-input and live-output nodes
+        self._out_nodes: list = []
         self._workers: list = []
         self._t0 = 0.0
 
@@ -173,6 +175,8 @@ class Chain:
             self._stop_workers()
             self.state = "closed"
             raise
+        self._in_nodes = [self.graph.nodes[nid] for nid in self.inputs]
+        self._out_nodes = [self.graph.nodes[nid] for nid in self.outputs]
         if self.realtime:
             from streamq.live.chain import LiveChain
             self._live = LiveChain(self.built)
@@ -229,15 +233,83 @@ class Chain:
             return None
         return outs if len(outs) > 1 else next(iter(outs.values()))
 
-    def close(self) -> dict[str, Any]:
+    def process_into(self, frames: int, blocks, outs=()) -> None:
+        """Push one block through the chain, from and into buffers the host owns.
+
+        For audio callbacks that cannot afford :meth:`process`'s checks and new
+        arrays: nothing is validated but the samples' finiteness (one sum per
+        input unless a sample is not finite), and the output blocks are written
+        into ``outs``.
+
+        Parameters
+        ----------
+        frames : int
+            Frames in this block (1 to 65,536; not checked).
+        blocks : sequence of numpy.ndarray
+            One array per live-input, in :attr:`inputs` order, shaped (at
+            least ``frames``, channels), float32 or float64; only the first
+            ``frames`` rows are read, and the chain keeps a copy.
+        outs : sequence
+            One destination per live-output, in :attr:`outputs` order: an
+            array shaped (at least ``frames``, channels), or a sequence of one
+            1-D array per channel (the buffers an audio server hands out); the
+            first ``frames`` samples of each are written (cast to its dtype).
+
+        Raises
+        ------
+        StreamqError, Exception
+            A refused non-finite sample (nothing of the block processed) or a
+            failure inside a node. Unlike :meth:`process`, the chain is left
+            open: the host decides, and calls :meth:`close` with
+            ``failed=True`` once it stops.
+        """
+        nodes = self._in_nodes
+        for i, x in enumerate(blocks):
+            x = x[:frames]
+            if not np.isfinite(np.add.reduce(x, axis=None, dtype=np.float64)):
+                x = self._finite(self.inputs[i], x, "Chain.process_into")
+            nodes[i].feed(x)
+        live = self._live
+        if live is not None:
+            if live.error is not None:
+                raise live.error
+            live.step(frames)
+        else:
+            self._step_all(frames)
+        self.position += frames
+        for node, out in zip(self._out_nodes, outs):
+            y = node.block
+            if isinstance(out, np.ndarray):
+                out[:frames] = y
+            else:
+                for c, buf in enumerate(out):
+                    buf[:frames] = y[:, c]
+
+    def close(self, *, early: bool = False, failed: bool = False,
+              extra: dict[str, Any] | None = None) -> dict[str, Any]:
         """Finish the stream, close every node, stop every thread and process the
-        chain started; returns (and keeps in :attr:`report`) the report."""
+        chain started; returns (and keeps in :attr:`report`) the report.
+
+        Parameters
+        ----------
+        early : bool
+            The host stopped before the end of its stream (Ctrl-C, a time
+            limit it did not reach): every node still finishes what it holds,
+            so the outputs are whole up to the last sample processed, and the
+            report says ``"complete": false``.
+        failed : bool
+            A call of :meth:`process_into` raised: the nodes are closed
+            without finishing (one of them may hold half a block) and the
+            report says ``"complete": false``.
+        extra : dict, optional
+            More top-level entries for the report (a host's own figures).
+        """
         if self.state == "new":
             self.state = "closed"
             return self.report or {}
         if self.state == "closed":
             return self.report or {}
-        return self._close(complete=True)
+        return self._close(complete=not failed, early=early, extra=extra)
 
     def __enter__(self) -> "Chain":
         return self.open() if self.state == "new" else self
@@ -292,23 +364,30 @@ class Chain:
                 raise StreamqError("Chain.process: every live-input's block must have the "
                                    "same length")
             frames = n
-            bad = ~np.isfinite(x)
-            if bad.any():
-                if node.config.nonfinite == "refuse":
-                    f, c = np.argwhere(bad)[0]
-                    raise StreamqError(f"Chain.process: node '{nid}': non-finite sample at "
-                                       f"sample {self.position + int(f)}, channel {int(c)} (set "
-                                       f"its nonfinite = \"zero\" to replace such samples "
-                                       f"with 0)")
-                x = np.where(bad, 0.0, x)
-            out[nid] = x
+            out[nid] = self._finite(nid, x)
         return out
+
+    def _finite(self, nid: str, x: np.ndarray, where: str = "Chain.process") -> np.ndarray:
+        """``x`` with the live-input's ``nonfinite`` policy applied: refused
+        (StreamqError naming the sample and channel) or its NaN and infinite
+        samples replaced with 0 (a new array)."""
+        bad = ~np.isfinite(x)
+        if bad.any():
+            if self.graph.nodes[nid].config.nonfinite == "refuse":
+                f, c = np.argwhere(bad)[0]
+                raise StreamqError(f"{where}: node '{nid}': non-finite sample at "
+                                   f"sample {self.position + int(f)}, channel {int(c)} (set "
+                                   f"its nonfinite = \"zero\" to replace such samples "
+                                   f"with 0)")
+            x = np.where(bad, 0.0, x)
+        return x
 
     def _step_all(self, frames: int) -> None:
         from streamq.engine.scheduler import _step_all
         _step_all(self.built, frames)
 
-    def _close(self, complete: bool) -> dict[str, Any]:
+    def _close(self, complete: bool, early: bool = False,
+               extra: dict[str, Any] | None = None) -> dict[str, Any]:
         from streamq.engine.scheduler import make_report, write_report
         self.state = "closed"
         failure: BaseException | None = None
@@ -323,6 +402,7 @@ class Chain:
                     self.built.graph.nodes[nid].finish()
         except BaseException as exc:
             failure, complete = exc, False
+        complete = complete and not early
         for nid in self.built.graph.order:
             try:
                 self.built.graph.nodes[nid].close(complete)
@@ -331,7 +411,7 @@ class Chain:
         self._stop_workers()
         seconds = time.perf_counter() - self._t0
         self.report = make_report(self.built, complete=complete, samples=self.position,
-                                  seconds=seconds)
+                                  seconds=seconds, extra=extra)
         if self.out_dir is not None:
             write_report(self.out_dir, self.report)
         if failure is not None:

@@ -15,7 +15,7 @@ import types
 import typing
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Annotated, Any, Union
+from typing import Annotated, Any, Literal, Union
 
 from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, ValidationError
 
@@ -45,6 +45,10 @@ class GraphHeader(BaseModel):
     sample_rate: int | None = Field(None, ge=1, le=1_536_000,
                                     description="Hz; taken from the file sources when left out")
     block: int = Field(256, ge=1, le=1 << 20, description="frames per block in live runs")
+    host: Literal["portaudio", "jack"] = Field(
+        "portaudio", description="what runs a live graph: a PortAudio stream, or a JACK client "
+                                 "of its own (also under PipeWire's JACK layer) whose ports are "
+                                 "named <node id>_<channel>")
     batch_input: str | None = Field(
         None, description="id of the file-source that `streamq batch` binds to each input file "
                           "(default: the graph's only file-source)")

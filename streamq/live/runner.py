@@ -250,15 +250,35 @@ class LiveRun:
         return self.xrun_calls
 
     def timing(self) -> dict:
-        n = min(self.calls, TIMES)
-        if n == 0:
-            return {}
-        ms = np.array(self.times[:n]) * 1000.0
-        return {f"p{q}": float(np.percentile(ms, q)) for q in (50, 90, 99)} | {"max": float(ms.max())}
+        return callback_timing(self.times, self.calls)
+
+
+def callback_timing(times: list, calls: int) -> dict:
+    """Percentiles (p50, p90, p99) and maximum of the callback work times, in ms.
+
+    Parameters
+    ----------
+    times : list of float
+        A ring of :data:`TIMES` work times in seconds, filled in call order.
+    calls : int
+        Callbacks so far (how much of the ring holds times).
+
+    Returns
+    -------
+    dict
+        Empty before the first callback.
+    """
+    n = min(calls, TIMES)
+    if n == 0:
+        return {}
+    ms = np.array(times[:n]) * 1000.0
+    return {f"p{q}": float(np.percentile(ms, q)) for q in (50, 90, 99)} | {"max": float(ms.max())}
 
 
 def _gather(run: LiveRun) -> dict:
-    """Figures for the terminal meter (main thread; plain reads)."""
+    """Figures for the terminal meter (main thread; plain reads). ``run`` is a
+    :class:`LiveRun` or another host's run with the same ``pos``, ``built``,
+    ``block``, ``xruns`` and ``timing()``."""
     stats = {"seconds": run.pos / run.built.ctx.sample_rate, "xruns": run.xruns, "meters": {}}
     t = run.timing()
     block_ms = 1000.0 * run.block / run.built.ctx.sample_rate
@@ -281,6 +301,9 @@ def _gather(run: LiveRun) -> dict:
 
 def run_live(graph: Graph, out_dir: Path, args) -> int:
     """`streamq run` for graphs with live nodes."""
+    if graph.header.host == "jack":
+        from streamq.live.jack_host import run_jack
+        return run_jack(graph, out_dir, args)
     from streamq.live.devices import import_sounddevice
     sd = import_sounddevice()
     block = int(getattr(args, "block", None) or graph.header.block)
@@ -391,9 +414,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 closing_errors.append(exc)
     live = {"block": block, "block_ms": 1000.0 * block / rate, "xruns": run.xruns,
             "status": run.status, "callback_ms": run.timing(), "callbacks": run.calls,
-            # every worker job is one estimator hop (snapshot and designs together)
-            "worker_errors": sum(n.worker_errors for n in built.graph.nodes.values()
-                                 if n.kind == "pdf-estimator")}
+            "worker_errors": worker_errors(built)}
     # as offline: a run stopped by Ctrl-C/SIGTERM says "complete": false (its outputs are
     # still closed and valid); one that reached --seconds or its source's end is complete
     report = make_report(built, complete=not interrupted, samples=run.pos,
@@ -402,18 +423,7 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                             else "seconds" if seconds else "end")
     write_report(out_dir, report)
     _after(out_dir, report, args)
-    failures = [(nid, r["worker_error"]) for nid, r in report.get("nodes", {}).items()
-                if isinstance(r, dict) and r.get("worker_error")]
-    if failures:
-        nid, msg = failures[-1]
-        print(f"streamq: warning: {live['worker_errors']} worker job(s) failed (last, node "
-              f"'{nid}': {msg}); the audio went on with the codebooks in force", file=sys.stderr)
-    t = live["callback_ms"]
-    print(f"{graph.name}: live run of {run.pos / rate:.1f} s, {run.xruns} xruns, callback "
-          f"p99 {t.get('p99', 0):.3f} ms of a {live['block_ms']:.2f} ms block; output in {out_dir}/")
-    for nid, m in report["meters"].items():
-        print(f"  {nid}: SNR {m.get('snr_db') or float('nan'):.2f} dB, segmental SNR "
-              f"{m.get('segsnr_db') or float('nan'):.2f} dB, {m.get('bits_per_sample') or 0:.3f} bits/sample")
+    live_summary(graph.name, out_dir, report)
     for exc in closing_errors:
         print(f"streamq: {exc}", file=sys.stderr)
     if stalled:
@@ -422,6 +432,40 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         sys.stderr.flush()
         os._exit(2)
     return 2 if closing_errors else 130 if interrupted else 0
+
+
+def worker_errors(built) -> int:
+    """Failed worker jobs of a live run (every job is one estimator hop:
+    snapshot and designs together), for the report's "live" section."""
+    return sum(n.worker_errors for n in built.graph.nodes.values() if n.kind == "pdf-estimator")
+
+
+def live_summary(name: str, out_dir: Path, report: dict) -> None:
+    """What a live run prints at its end: a warning for failed worker jobs, then
+    the run's length, dropouts and callback p99, and one line per meter.
+
+    Parameters
+    ----------
+    name : str
+        The graph's name.
+    out_dir : Path
+    report : dict
+        The run's report, with its "live" section.
+    """
+    live = report["live"]
+    failures = [(nid, r["worker_error"]) for nid, r in report.get("nodes", {}).items()
+                if isinstance(r, dict) and r.get("worker_error")]
+    if failures:
+        nid, msg = failures[-1]
+        print(f"streamq: warning: {live['worker_errors']} worker job(s) failed (last, node "
+              f"'{nid}': {msg}); the audio went on with the codebooks in force", file=sys.stderr)
+    t = live["callback_ms"]
+    print(f"{name}: live run of {report['samples'] / report['sample_rate']:.1f} s, "
+          f"{live['xruns']} xruns, callback p99 {t.get('p99', 0):.3f} ms of a "
+          f"{live['block_ms']:.2f} ms block; output in {out_dir}/")
+    for nid, m in report["meters"].items():
+        print(f"  {nid}: SNR {m.get('snr_db') or float('nan'):.2f} dB, segmental SNR "
+              f"{m.get('segsnr_db') or float('nan'):.2f} dB, {m.get('bits_per_sample') or 0:.3f} bits/sample")
 
 
 def _terminal_meter(args):

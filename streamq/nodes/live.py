@@ -25,6 +25,18 @@ class LiveInputConfig(NodeConfig):
     nonfinite: Literal["refuse", "zero"] = Field(
         "refuse", description="NaN or infinite samples from the host (streamq.Chain, the audio "
                               "server clients): refuse the block, or replace them with 0")
+    connect: list[str] = Field(
+        [], description="host = \"jack\": ports to take each channel from when the run starts, "
+                        "in channel order (e.g. [\"system:capture_1\"]); our own input ports are "
+                        "<node id>_1, <node id>_2 ...")
+
+    @model_validator(mode="after")
+    def _check_connect(self):
+        if len(self.connect) > self.channels:
+            raise ValueError(f"connect: {len(self.connect)} ports for {self.channels} channel(s)")
+        if any(not p.strip() for p in self.connect):
+            raise ValueError("connect: a port name is empty")
+        return self
 
 
 @register
@@ -69,9 +81,15 @@ class LiveOutputConfig(NodeConfig):
                                                             "ramps to gain_db over this time")
     limit_dbfs: float = Field(-1.0, le=-1.0, ge=-60.0, description="peak ceiling of the output")
     device: str | int | None = Field(None, description="device name or index; default: system default")
+    connect: list[str] = Field(
+        [], description="host = \"jack\": ports to send each channel to when the run starts, "
+                        "in channel order (e.g. [\"system:playback_1\"]); our own output ports "
+                        "are <node id>_1, <node id>_2 ...")
 
     @model_validator(mode="after")
     def _check(self):
+        if any(not p.strip() for p in self.connect):
+            raise ValueError("connect: a port name is empty")
         if self.monitor == "noise" and self.reference is None:
             raise ValueError("reference: monitor = \"noise\" needs this field (the original signal)")
         return self

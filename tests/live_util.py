@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import os
 import re
+import select
 import shutil
 import signal
 import subprocess
@@ -247,7 +248,7 @@ class Player:
         if self.signal.ndim == 1:
             self.signal = self.signal[:, None]
         self.loop = loop
-        self.client = jack.Client(name, servername=server.name, no_start_server=True)
+        self.client = jack.Client(name, servername=server.name or None, no_start_server=True)
         self.name = self.client.name
         self.outs = [self.client.outports.register(f"out_{i + 1}")
                      for i in range(self.signal.shape[1])]
@@ -290,6 +291,10 @@ class Player:
             for ch, p in enumerate(self.ins):
                 self.rec[r:r + k, ch] = p.get_array()[:k]
             self.recorded = r + k
+
+    def connected(self) -> bool:
+        """Every port of ours has a connection (made by streamq's ``connect``)."""
+        return all(self.client.get_all_connections(p) for p in self.outs + self.ins)
 
     def streamq_ports(self) -> tuple[list[str], list[str]]:
         """streamq's (PortAudio's) input and output ports, in channel order."""
@@ -443,3 +448,221 @@ def jack_server():
         yield server
     finally:
         server.stop()
+
+
+# -- PipeWire's JACK layer ----------------------------------------------------------------
+
+def pipewire_problem() -> str | None:
+    """Why a private PipeWire with its JACK layer cannot run here, or None."""
+    for tool, package in (("pipewire", "pipewire"), ("pw-jack", "pipewire-jack"),
+                          ("pw-cli", "pipewire-bin")):
+        if shutil.which(tool) is None:
+            return f"{tool} is not installed (apt-get install pipewire pipewire-jack)"
+    return None
+
+
+class PipeWireServer:
+    """A private, headless PipeWire daemon (its own XDG_RUNTIME_DIR, no session
+    bus, no session manager) whose JACK layer serves JACK clients started with
+    ``pw-jack``. Its graph is paced by PipeWire's dummy driver in real time.
+
+    The period (quantum) starts at PipeWire's default; a JACK client asks for
+    another with ``jack_set_buffer_size`` (JACK-Client: ``client.blocksize = n``),
+    which holds while that client is active.
+
+    Attributes
+    ----------
+    prefix : list of str
+        What a JACK client's command line starts with (``pw-jack``).
+    """
+
+    prefix = ["pw-jack"]
+
+    def __init__(self, rate: int = RATE):
+        self.rate = rate
+        self.name = "pipewire-0"
+        self.dir: Path | None = None
+        self.proc: subprocess.Popen | None = None
+        self._log = None
+
+    def start(self, timeout: float = 15.0) -> "PipeWireServer":
+        self.dir = Path(tempfile.mkdtemp(prefix="streamq-pw-"))
+        self.dir.chmod(0o700)
+        self._log = open(self.dir / "pipewire.log", "wb")
+        env = self.env()
+        env.pop("DBUS_SESSION_BUS_ADDRESS", None)
+        self.proc = subprocess.Popen(["pipewire"], env=env, stdout=self._log,
+                                     stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self.proc.poll() is not None:
+                tail = self.log_tail()
+                self.stop()
+                raise RuntimeError(f"pipewire exited with status {self.proc and self.proc.returncode}:\n{tail}")
+            if (self.dir / self.name).exists():
+                return self
+            time.sleep(0.05)
+        tail = self.log_tail()
+        self.stop()
+        raise RuntimeError(f"pipewire did not answer within {timeout} s:\n{tail}")
+
+    def stop(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(timeout=5)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(timeout=5)
+        self.proc = None
+        if self._log is not None:
+            self._log.close()
+            self._log = None
+        if self.dir is not None:
+            shutil.rmtree(self.dir, ignore_errors=True)
+            self.dir = None
+
+    def __enter__(self) -> "PipeWireServer":
+        return self.start()
+
+    def __exit__(self, *exc) -> None:
+        self.stop()
+
+    def log_tail(self, lines: int = 20) -> str:
+        try:
+            text = (self.dir / "pipewire.log").read_text(errors="replace")
+        except (OSError, TypeError):
+            return ""
+        return "\n".join(text.splitlines()[-lines:])
+
+    def env(self, **extra: str) -> dict[str, str]:
+        env = dict(os.environ)
+        env["PYTHONPATH"] = str(REPO)
+        env["XDG_RUNTIME_DIR"] = str(self.dir)
+        env.pop("PIPEWIRE_REMOTE", None)
+        env.pop("JACK_DEFAULT_SERVER", None)
+        env["JACK_NO_START_SERVER"] = "1"
+        env.update(extra)
+        return env
+
+
+# -- a player in a process of its own ---------------------------------------------------
+
+PLAYER_CHILD = """
+import json, sys, time, types
+import numpy as np
+sys.path.insert(0, sys.argv[1])
+from live_util import Player
+signal = np.load(sys.argv[2])
+server = types.SimpleNamespace(name=sys.argv[3] or None, rate=int(sys.argv[4]))
+player = Player(server, signal, record=int(sys.argv[5]), name=sys.argv[6],
+                record_seconds=float(sys.argv[7]))
+print("ready", player.name, player.client.blocksize, flush=True)
+for line in sys.stdin:
+    cmd, *arg = line.split()
+    if cmd == "wait":
+        deadline = time.monotonic() + float(arg[0])
+        while not player.connected() and time.monotonic() < deadline:
+            time.sleep(0.005)
+        player.playing = player.connected()
+        print("playing" if player.playing else "alone", flush=True)
+    elif cmd == "blocksize":
+        player.client.blocksize = int(arg[0])
+        time.sleep(0.2)
+        print("blocksize", player.client.blocksize, flush=True)
+    elif cmd == "ports":
+        print(json.dumps([p.name for p in player.client.get_ports(arg[0] if arg else "")]),
+              flush=True)
+    elif cmd == "stop":
+        np.save(arg[0], player.recording())
+        print(json.dumps({"played": player.played, "recorded": player.recorded,
+                          "xruns": player.xruns, "periods": player.periods}), flush=True)
+        break
+player.close()
+"""
+
+
+class PlayerProcess:
+    """:class:`Player` in a child process (needed for PipeWire, whose libjack a
+    process must load at its start: ``pw-jack``), driven line by line.
+
+    Parameters
+    ----------
+    server : JackServer or PipeWireServer
+    signal : float array (frames, channels), played once from :meth:`wait_playing` on.
+    record : streamq output channels to record.
+    name : the JACK client name (``<name>:out_1`` ... feed streamq, ``in_1`` ... record).
+    """
+
+    def __init__(self, server, signal: np.ndarray, *, record: int = 0,
+                 name: str = "streamq-player", record_seconds: float = 30.0):
+        self.dir = Path(tempfile.mkdtemp(prefix="streamq-player-"))
+        np.save(self.dir / "signal.npy", np.asarray(signal, dtype=np.float32))
+        srv = "" if isinstance(server, PipeWireServer) else server.name
+        cmd = [*getattr(server, "prefix", []), sys.executable, "-c", PLAYER_CHILD,
+               str(REPO / "tests"), str(self.dir / "signal.npy"), srv, str(server.rate),
+               str(record), name, str(record_seconds)]
+        self.proc = subprocess.Popen(cmd, env=server.env(), text=True, stdin=subprocess.PIPE,
+                                     stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        first = self._line(60)
+        if not first.startswith("ready "):
+            self.close()
+            raise RuntimeError(f"the player did not start: {first!r}")
+        _, self.name, period = first.split()
+        self.period = int(period)
+
+    def _line(self, timeout: float) -> str:
+        ready, _, _ = select.select([self.proc.stdout], [], [], timeout)
+        if not ready:
+            raise RuntimeError(f"the player did not answer within {timeout} s")
+        line = self.proc.stdout.readline()
+        if not line:
+            err = self.proc.stderr.read() if self.proc.poll() is not None else ""
+            raise RuntimeError(f"the player ended: {err[-2000:]}")
+        return line.strip()
+
+    def _ask(self, text: str, timeout: float = 30.0) -> str:
+        self.proc.stdin.write(text + "\n")
+        self.proc.stdin.flush()
+        return self._line(timeout)
+
+    def wait_playing(self, timeout: float = 60.0) -> bool:
+        """Wait until every player port is connected, then start playing."""
+        return self._ask(f"wait {timeout}", timeout + 10) == "playing"
+
+    def set_blocksize(self, frames: int) -> int:
+        """Ask the server for another period; the period now in force."""
+        return int(self._ask(f"blocksize {frames}").split()[1])
+
+    def ports(self, pattern: str = "") -> list[str]:
+        import json
+        return json.loads(self._ask(f"ports {pattern}"))
+
+    def stop(self) -> tuple[np.ndarray, dict]:
+        """Stop; (what was recorded, (frames, channels) float32, and the player's counts)."""
+        import json
+        stats = json.loads(self._ask(f"stop {self.dir / 'rec.npy'}"))
+        self.proc.wait(timeout=30)
+        rec = np.load(self.dir / "rec.npy")
+        return rec, stats
+
+    def close(self) -> None:
+        if self.proc.poll() is None:
+            self.proc.kill()
+            self.proc.wait()
+        for f in (self.proc.stdin, self.proc.stdout, self.proc.stderr):
+            try:
+                f.close()
+            except Exception:
+                pass
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
+def launch_streamq(server, *args, cwd: Path | None = None,
+                   env: dict[str, str] | None = None) -> subprocess.Popen:
+    """Start ``streamq ARGS`` as a JACK client of ``server`` (under ``pw-jack`` for
+    PipeWire; ``env``: more environment variables), stdout/stderr piped."""
+    return subprocess.Popen([*getattr(server, "prefix", []), *streamq_cmd(*args)],
+                            env=server.env(**(env or {})), cwd=cwd, text=True,
+                            stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, stdin=subprocess.DEVNULL)

@@ -211,12 +211,12 @@ class StreamqChainElement(GstBase.BaseTransform):
     # -- caps -------------------------------------------------------------------------
     def do_transform_caps(self, direction, caps, filter_):
         host = self.host
-        if host is None:
-            result = _TEMPLATE.copy()
-        else:
-            # what the graph takes first (a converter before us picks it), then any
-            # rate and channel count, so that a stream the graph cannot take reaches
-            # set_caps and is refused with a message naming the graph's field
+        result = _TEMPLATE.copy()
+        if host is not None:
+            # what the graph takes first (a converter before us picks it when told
+            # the rate and channels), then any rate and channel count, so that a
+            # stream the graph cannot take reaches set_caps and is refused there
+            # with a message naming the graph's field
             channels = host.out_channels if direction == Gst.PadDirection.SINK \
                 else host.in_channels
             result = _audio_caps(host.sample_rate, channels)
@@ -226,11 +226,11 @@ class StreamqChainElement(GstBase.BaseTransform):
         return result
 
     def do_get_unit_size(self, caps):
-        s = caps.get_structure(0)
-        ok, channels = s.get_int("channels")
-        if not ok:
-            return False, 0
-        return True, 4 * channels
+        try:
+            ok, channels = caps.get_structure(0).get_int("channels")
+        except Exception:       # no structure: nothing to size
+            ok, channels = False, 0
+        return (True, 4 * channels) if ok else (False, 0)
 
     def do_set_caps(self, incaps, outcaps):
         host = self.host

@@ -369,3 +369,65 @@ def test_bad_setups_end_the_pipeline_with_one_line(tmp_path, gst_env, case, need
     assert "Traceback" not in res.stderr and "Traceback" not in res.stdout
     # nothing of ours written: no output folder, no report
     assert not (tmp_path / "out").exists() and not (tmp_path / "report.json").exists()
+
+
+SMALL = f"""
+[graph]
+name = "small"
+sample_rate = {RATE}
+[nodes.mic]
+use = "live-input"
+channels = 2
+[nodes.gain]
+use = "encoder"
+input = "mic"
+method = "lloyd-max"
+bits = 4
+adapt = "gain"
+[nodes.dec]
+use = "decoder"
+input = "gain"
+[nodes.noise]
+use = "error-meter"
+reference = "mic"
+input = "dec"
+[nodes.mon]
+use = "live-output"
+input = "dec"
+"""
+
+
+@needs_gst
+def test_report_property_alone_writes_one_file(tmp_path, gst_env):
+    wav = tmp_path / "in.wav"
+    sf.write(wav, material(1.0), RATE, subtype="FLOAT")
+    graph = tmp_path / "small.toml"
+    graph.write_text(SMALL)
+    res = file_pipeline(gst_env, wav, tmp_path / "out.wav", graph=str(graph),
+                        report=str(tmp_path / "r.json"))
+    assert res.returncode == 0, res.stderr[-3000:]
+    rep = json.loads((tmp_path / "r.json").read_text())
+    assert rep["complete"] and rep["samples"] == RATE and rep["meters"]["noise"]["snr_db"] > 10
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["in.wav", "out.wav", "r.json",
+                                                          "small.toml"]
+
+
+@needs_gst
+def test_nonfinite_sample_stops_the_pipeline_naming_node_and_sample(tmp_path, gst_env):
+    x = material(1.0)
+    x[30_000, 1] = np.nan
+    wav = tmp_path / "in.wav"
+    sf.write(wav, x, RATE, subtype="FLOAT")
+    graph = tmp_path / "small.toml"
+    graph.write_text(SMALL)
+    res = file_pipeline(gst_env, wav, tmp_path / "out.wav", graph=str(graph),
+                        report=str(tmp_path / "r.json"), out_dir=str(tmp_path / "out"))
+    assert res.returncode != 0
+    errors = [ln for ln in (res.stdout + res.stderr).splitlines()
+              if ln.startswith("ERROR: from element")]
+    assert errors, res.stdout + res.stderr
+    assert "small.toml: node 'mic': non-finite sample at sample 30000, channel 1" in errors[0]
+    assert "Traceback" not in res.stderr
+    # the run is reported as unfinished; no end-of-stream report file
+    assert json.loads((tmp_path / "out" / "report.json").read_text())["complete"] is False
+    assert not (tmp_path / "r.json").exists()

@@ -176,10 +176,17 @@ class PipelineChain:
         n = x.shape[0]
         if n == 0:
             return np.zeros((0, self.out_channels), dtype=np.float32)
-        if n <= MAX_FRAMES:
-            return self.chain.process(x)
-        return np.concatenate([self.chain.process(x[i:i + MAX_FRAMES])
-                               for i in range(0, n, MAX_FRAMES)])
+        try:
+            if n <= MAX_FRAMES:
+                return self.chain.process(x)
+            return np.concatenate([self.chain.process(x[i:i + MAX_FRAMES])
+                                   for i in range(0, n, MAX_FRAMES)])
+        except StreamqError as exc:
+            # name the graph file where Chain names its own method
+            text = str(exc)
+            if text.startswith("Chain.process: "):
+                raise StreamqError(f"{self.source}: {text[len('Chain.process: '):]}") from None
+            raise
 
     def finish(self) -> dict[str, Any]:
         """End of stream: close the chain, write the report(s); returns the report."""

@@ -202,14 +202,12 @@ class PipelineChain:
         return self.report
 
     def abort(self) -> None:
-        """The pipeline stopped before the end of the stream: close without
-        finishing (sinks keep only what they wrote; the report says
-        ``"complete": false``; no report file beside ``out_dir``'s)."""
-        if self.chain.state == "open":
-            # the context manager's exit path is Chain's one way to close an unfinished run
-            self.chain.__exit__(RuntimeError, None, None)
-        elif self.chain.state == "new":
-            self.chain.close()
+        """The pipeline stopped before the end of the stream (an error, a stop
+        without end of stream): the nodes finish what they hold, so the sinks'
+        files are whole up to the last sample processed; the report (in
+        ``out_dir`` only, not the ``report`` file) says ``"complete": false``."""
+        if self.chain.state != "closed":
+            self.chain.close(early=True)
 
 
 def _probe(graph, output_id: str) -> tuple[int, int, int]:

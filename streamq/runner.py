@@ -116,6 +116,24 @@ def write_report_pages(result: RunResult) -> list[Path]:
         return []
 
 
+PLOTS_PER_METER = 3
+
+
+def plot_workers(graph: Graph):
+    """The helper processes that will draw the run's plots (one per core, at
+    most one per plot; none for a graph without meters): a context manager,
+    see :class:`streamq.report.PlotWorkers`."""
+    import contextlib
+    meters = sum(1 for node in graph.nodes.values() if getattr(node, "role", None) == "meter")
+    if not meters:
+        return contextlib.nullcontext()
+    try:
+        from streamq.report import PlotWorkers
+        return PlotWorkers(PLOTS_PER_METER * meters)
+    except Exception:            # no helpers: the plots are drawn here, as always
+        return contextlib.nullcontext()
+
+
 def run_graph_file(args) -> int:
     graph = load_graph(args.graph, args.overrides, precheck=True)
     live = any(n.live_only for n in graph.nodes.values())
@@ -127,20 +145,23 @@ def run_graph_file(args) -> int:
     if live:
         from streamq.live.runner import run_live
         return run_live(graph, out, args)
-    built = build(graph, out)
-    bar = Progress(built.length, built.ctx.sample_rate, getattr(args, "quiet", False), graph.name)
-    try:
-        result = run_offline(built, block=args.block, progress=bar)
-    finally:
-        bar.close()
-    # the nodes' buffers and series are in the files and the report now: let them
-    # go before plotting, which is when an hours-long run's memory peaks
-    del built
-    release_memory()
-    if not getattr(args, "quiet", False) or not result.complete:
-        for line in summary_lines(result):
-            print(line)
-    written = write_report_pages(result)
+    # the plots' helper processes start now: they load matplotlib while the graph runs
+    with plot_workers(graph):
+        built = build(graph, out)
+        bar = Progress(built.length, built.ctx.sample_rate, getattr(args, "quiet", False),
+                       graph.name)
+        try:
+            result = run_offline(built, block=args.block, progress=bar)
+        finally:
+            bar.close()
+        # the nodes' buffers and series are in the files and the report now: let them
+        # go before plotting, which is when an hours-long run's memory peaks
+        del built
+        release_memory()
+        if not getattr(args, "quiet", False) or not result.complete:
+            for line in summary_lines(result):
+                print(line)
+        written = write_report_pages(result)
     if written and not getattr(args, "quiet", False):
         print(f"  report: {written[-1]}" if written[-1].suffix == ".html" else
               f"  plots: {len(written)} files")

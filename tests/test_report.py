@@ -493,3 +493,59 @@ def test_interrupted_replay_leaves_consistent_files(tmp_path, long_wav, signum):
     page = (out / "report.html").read_text()
     assert f"stopped early at sample {n:,}" in page
     assert "stopped early" in stdout
+
+
+# -- plots drawn by helper processes (PlotWorkers) ----------------------------------------------
+
+def _helpers(plots: int = 6):
+    from streamq.report import PlotWorkers
+    workers = PlotWorkers(plots, limit=2)
+    if workers.pool is None:
+        pytest.skip("no helper processes here (one core, or no fork)")
+    return workers
+
+
+def test_helpers_draw_the_same_files_as_one_process(tmp_path):
+    one, two = tmp_path / "one", tmp_path / "two"
+    report = fake_run(one)
+    fake_run(two)
+    alone = write_report_files(one, report)
+    with _helpers():
+        helped = write_report_files(two, report)
+    assert [p.name for p in helped] == [p.name for p in alone]
+    for a, b in zip(alone[:-1], helped[:-1]):
+        assert a.read_bytes() == b.read_bytes(), a.name    # the same pictures, byte for byte
+    assert (one / "report.html").read_text() == (two / "report.html").read_text()
+
+
+def test_a_plot_failing_in_a_helper_warns_as_in_one_process(tmp_path, capsys):
+    report = fake_run(tmp_path, meters=("alpha", "beta"))
+    report["meters"]["alpha"]["codebooks"]["first"]["range"] = "not a range"
+    with _helpers():
+        written = write_report_files(tmp_path, report)
+    assert [p.name for p in written] == [
+        "alpha-snr.png", "alpha-spectrum.png", *plot_names("beta").values(), "report.html"]
+    err = capsys.readouterr().err.splitlines()
+    assert len(err) == 1
+    assert err[0].startswith("streamq: warning: plot alpha-codebooks.png failed (ValueError: ")
+
+
+def test_dead_helpers_leave_the_plots_to_the_caller(tmp_path):
+    report = fake_run(tmp_path, meters=("alpha",))
+    with _helpers() as workers:
+        for process in list(workers.pool._processes.values()):
+            process.kill()
+            process.join()
+        written = write_report_files(tmp_path, report)
+    assert [p.name for p in written] == [*plot_names("alpha").values(), "report.html"]
+    for p in written[:-1]:
+        assert_png(p)
+
+
+def test_helpers_only_inside_their_block_and_not_for_one_plot(tmp_path):
+    import streamq.report as R
+    assert R._WORKERS.get() is None
+    with _helpers() as workers:
+        assert R._WORKERS.get() is workers
+    assert R._WORKERS.get() is None and workers.pool is None
+    assert R.PlotWorkers(1).pool is None

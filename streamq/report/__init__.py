@@ -5,15 +5,25 @@ meters' CSV files, and the ``streamq compare`` command.
 an interrupted one, with whatever the meters wrote). It never raises for a
 plotting problem: each failure becomes a one-line warning on stderr, so the
 report.json that is already on disk is never lost.
+
+Inside ``with PlotWorkers(n):`` the plots are drawn by ``n`` helper processes,
+side by side; ``streamq run`` starts them before the graph runs, so that
+importing matplotlib and loading its fonts overlap the run. The pictures are
+the same either way: each plot is the same function of the same data.
 """
 
 from __future__ import annotations
 
+import contextvars
+import os
 import sys
 from pathlib import Path
 from typing import Any, Callable
 
-__all__ = ["write_report_files", "plot_names"]
+__all__ = ["write_report_files", "plot_names", "PlotWorkers"]
+
+# the helper processes of the ``with PlotWorkers(...)`` block in force, if any
+_WORKERS: contextvars.ContextVar = contextvars.ContextVar("streamq_plot_workers", default=None)
 
 
 def plot_names(meter_id: str) -> dict[str, str]:
@@ -51,32 +61,41 @@ def write_report_files(out_dir: str | Path, report: dict[str, Any], *,
         warn("plotting (matplotlib)", exc)
         P = None
     rate = float(report.get("sample_rate") or 48_000)
-    for mid, meter in (report.get("meters") or {}).items():
+    meters = report.get("meters") or {}
+    # every plot to draw, in the order of the written list: (meter, kind, CSV name)
+    todo: list[tuple[str, str, str | None]] = []
+    for mid, meter in meters.items():
         if not isinstance(meter, dict) or P is None:
             continue
-        names = plot_names(mid)
-        mine: dict[str, Path] = {}
-
-        def attempt(kind: str, fn) -> None:
-            try:
-                p = fn(out_dir / names[kind])
-            except Exception as exc:
-                warn(f"plot {names[kind]}", exc)
-                return
-            if p is not None:
-                mine[kind] = Path(p)
-                written.append(Path(p))
-
-        attempt("codebooks", lambda path: P.plot_codebooks(mid, meter, rate, path))
-        series_name = meter.get("series_csv")
-        if series_name and (out_dir / series_name).is_file():
-            attempt("snr", lambda path: P.plot_snr(
-                mid, meter, P.read_csv_columns(out_dir / series_name), path))
-        spec_name = meter.get("spectrum_csv")
-        if spec_name and (out_dir / spec_name).is_file():
-            attempt("spectrum", lambda path: P.plot_spectrum(
-                mid, meter, P.read_csv_columns(out_dir / spec_name), path))
-        plots[mid] = mine
+        plots[mid] = {}
+        todo.append((mid, "codebooks", None))
+        for kind, key in (("snr", "series_csv"), ("spectrum", "spectrum_csv")):
+            name = meter.get(key)
+            if name and (out_dir / name).is_file():
+                todo.append((mid, kind, name))
+    workers = _WORKERS.get()
+    futures = [workers.submit(_draw_portable, kind, mid, meters[mid], rate, out_dir, csv)
+               if workers is not None else None for mid, kind, csv in todo]
+    for (mid, kind, csv), future in zip(todo, futures):
+        name = plot_names(mid)[kind]
+        try:
+            drawn = False
+            if future is not None:
+                try:
+                    ok, p = future.result()
+                    drawn = True
+                except Exception:        # the helper process failed, not the plot: draw here
+                    pass
+                if drawn and not ok:
+                    raise p
+            if not drawn:
+                p = _draw(kind, mid, meters[mid], rate, out_dir, csv)
+        except Exception as exc:
+            warn(f"plot {name}", exc)
+            continue
+        if p is not None:
+            plots[mid][kind] = Path(p)
+            written.append(Path(p))
     try:
         from streamq.report.page import render_html
         from streamq.engine.audiofile import replacing
@@ -87,3 +106,120 @@ def write_report_files(out_dir: str | Path, report: dict[str, Any], *,
     except Exception as exc:
         warn("report.html", exc)
     return written
+
+
+def _draw(kind: str, mid: str, meter: dict[str, Any], rate: float, out_dir: Path,
+          csv: str | None) -> Path | None:
+    """Draw one plot of one meter (``kind`` as in :func:`plot_names`); raises
+    what the plot raises."""
+    from streamq.report import plots as P
+    path = Path(out_dir) / plot_names(mid)[kind]
+    if kind == "codebooks":
+        return P.plot_codebooks(mid, meter, rate, path)
+    columns = P.read_csv_columns(Path(out_dir) / csv)
+    if kind == "snr":
+        return P.plot_snr(mid, meter, columns, path)
+    return P.plot_spectrum(mid, meter, columns, path)
+
+
+class PlotFailed(Exception):
+    """A plot's exception that could not travel back from a helper process
+    as itself (its message names the original type)."""
+
+
+def _draw_portable(*args) -> tuple[bool, Any]:
+    """:func:`_draw` in a helper process: ``(True, path)``, or ``(False,
+    exception)`` when the plot raised, so that a failing plot is told apart
+    from a failing process."""
+    import pickle
+    try:
+        return True, _draw(*args)
+    except Exception as exc:
+        try:
+            pickle.loads(pickle.dumps(exc))
+        except Exception:
+            msg = " ".join(str(exc).split())
+            exc = PlotFailed(f"{type(exc).__name__}: {msg}" if msg else type(exc).__name__)
+        return False, exc
+
+
+def _start_worker() -> None:
+    """A helper process's start: leave Ctrl-C to the run, then import
+    matplotlib and load the fonts (what the first plot would pay)."""
+    import signal
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    from streamq.report import plots as P
+    P.warm_up()
+
+
+def _nothing() -> None:
+    return None
+
+
+def available_cores() -> int:
+    """Cores this process may run on."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+class PlotWorkers:
+    """Helper processes that draw a run's plots side by side.
+
+    Started before a run (they import matplotlib and load its fonts while the
+    run computes), used by :func:`write_report_files` inside ``with``, stopped
+    at the end of the block. The processes are forked, so they see the modules
+    as the caller has them. Where forking is not possible, or with fewer than
+    two plots or cores, there are no helpers and the plots are drawn in the
+    calling process as always; a helper that fails has its plots drawn there too.
+
+    Parameters
+    ----------
+    plots : int
+        How many plots the run will draw (at most this many helpers start).
+    limit : int
+        At most this many helpers (default 4; never more than the cores).
+    """
+
+    def __init__(self, plots: int, limit: int = 4):
+        self.pool = None
+        self._token = None
+        count = min(plots, limit, available_cores())
+        if count < 2:
+            return
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+        try:
+            context = multiprocessing.get_context("fork")
+            sys.stdout.flush()
+            sys.stderr.flush()
+            self.pool = ProcessPoolExecutor(count, mp_context=context, initializer=_start_worker)
+            self.pool.submit(_nothing)    # start the processes now
+        except (ValueError, OSError, RuntimeError):
+            self.close()
+
+    def submit(self, fn, *args):
+        """Run ``fn(*args)`` in a helper: a future, or None when the helpers
+        are gone (the caller then runs it itself)."""
+        try:
+            return self.pool.submit(fn, *args) if self.pool is not None else None
+        except Exception:        # a broken or closed pool
+            return None
+
+    def __enter__(self) -> "PlotWorkers":
+        if self.pool is not None:
+            self._token = _WORKERS.set(self)
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close(wait=exc[0] is None)
+
+    def close(self, wait: bool = True) -> None:
+        """Stop the helpers (without waiting when the run was cut short)."""
+        if self._token is not None:
+            _WORKERS.reset(self._token)
+            self._token = None
+        if self.pool is not None:
+            pool, self.pool = self.pool, None
+            pool.shutdown(wait=wait, cancel_futures=True)

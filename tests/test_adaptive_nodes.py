@@ -109,7 +109,7 @@ def test_pdf_models_take_extreme_shapes_without_overflow():
 
 
 def test_failed_design_keeps_the_codebook_in_force_and_is_counted(tmp_path, monkeypatch):
-    import streamq.nodes.encoder as enc_mod
+    import streamq.nodes.schemes.window as enc_mod
     real = enc_mod.design_job
     bad_at = 2400   # a hop (10 ms = 80 samples at 8 kHz)
 
@@ -166,7 +166,7 @@ def test_backward_scale_estimate_settles_on_the_input_scale(method, levels):
     adapter settles on, from decoded samples only, is the input's (the decoded
     variance of the unit design is sigma**2 * V; V = 1 - D only for Lloyd-Max: a
     uniform quantizer's was taken as 1 - D, and at 1 bit the scale ran away)."""
-    from streamq.nodes.coding import BackwardAdapter
+    from streamq.nodes.schemes.backward import BackwardAdapter
     rng = np.random.default_rng(11)
     x = 0.05 * rng.standard_normal(96_000)
     ad = BackwardAdapter({"method": method, "levels": levels, "window": 24_000, "hop": 4_800,

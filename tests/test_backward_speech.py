@@ -6,7 +6,7 @@ next onset then saturates the quantizer, whose decoded variance is bounded
 by its outer levels, so the scale crawls back over many hops. The graph
 tests run the project's own chain (file-source -> encoder -> decoder ->
 error-meter) on the alsa-utils speech recordings; the unit tests check each
-scale rule of :class:`streamq.nodes.coding.BackwardAdapter` on its own.
+scale rule of :class:`streamq.nodes.schemes.backward.BackwardAdapter` on its own.
 """
 
 from __future__ import annotations
@@ -17,7 +17,8 @@ from scipy import stats
 
 from chain_util import run_toml
 from material import RATE, SKIP_REASON, have_speech, speech_with_pauses
-from streamq.nodes.coding import BackwardAdapter, unit_design
+from streamq.nodes.coding import unit_design
+from streamq.nodes.schemes.backward import BackwardAdapter
 
 needs_speech = pytest.mark.skipif(not have_speech(), reason=SKIP_REASON)
 

@@ -13,7 +13,6 @@ from pydantic import Field
 from streamq.engine.blocks import CodebookUpdate, Packet, SignalBlock, StreamSpec
 from streamq.engine.node import Node, NodeConfig
 from streamq.engine.registry import register
-from streamq.nodes import coding
 
 
 class DecoderConfig(NodeConfig):
@@ -59,7 +58,8 @@ class Decoder(Node):
                                          f"stream this decoder cannot follow ({exc})") from None
             self.steps = self.step_scheme.initial_state(self.C)
         if info.get("adapt") == "backward":
-            self.backward = coding.BackwardAdapter(info, self.C)
+            from streamq.nodes.schemes.backward import BackwardAdapter
+            self.backward = BackwardAdapter(info, self.C)
             self.levels = [np.asarray(cb.levels) for cb in self.backward.current]
         return StreamSpec("signal", spec.rate, self.C, spec.latency, None, spec.frames,
                           {"coding": info, "n_levels": self.L})

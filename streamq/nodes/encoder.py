@@ -20,7 +20,6 @@ Adaptation modes (DESIGN.md):
 
 from __future__ import annotations
 
-import collections
 import math
 from typing import Literal
 
@@ -33,55 +32,8 @@ from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
 from streamq.errors import StreamqError
 from streamq.nodes import coding
-from streamq.nodes.estimator import js_drift
-
-def unit_blocks(x: np.ndarray, size: int) -> np.ndarray:
-    """Training samples for gain mode's unit codebook: each whole block of
-    ``size`` samples divided by its RMS (silent blocks left out)."""
-    n = x.shape[0] // size
-    blocks = x[:n * size].reshape(n, size)
-    rms = np.sqrt(np.mean(blocks * blocks, axis=1))
-    keep = rms > 0
-    return (blocks[keep] / rms[keep, None]).ravel()
-
-
-def drift_decision(snap, ref, threshold: float):
-    """(drift, retrain?) for the drift trigger: Jensen-Shannon divergence between
-    this snapshot and the one the codebook in force was designed on."""
-    if ref is None:
-        return None, True
-    drift = js_drift(ref.centers, ref.counts, snap.centers, snap.counts)
-    return drift, drift > threshold
-
-
-def design_job(snap, init, recipe: dict):
-    """The codebook for one snapshot, on the side-information grid, with its
-    cost in bits; None when the window is empty. A pure function (live runs
-    compute it in a worker process)."""
-    L, opts = recipe["levels"], recipe["opts"]
-    if recipe["design_from"] == "model" and snap.model is not None:
-        m = snap.model
-        model = m["model"] if m["model"] in coding.PARAMETRIC else recipe["model"]
-        cb = coding.model_codebook(recipe["method"], L, model, m["mean"], m["std"], m.get("shape"),
-                                   opts)
-    else:
-        return coding.window_codebook(recipe["method"], L, snap.centers, snap.counts, init, opts,
-                                      recipe["grid_bits"], recipe["standard"])
-    return coding.finish_levels(cb, recipe["grid_bits"], recipe["standard"])
-
-
-def live_design_job(snap, ref, init, recipe: dict):
-    """Live runs: (drift, design or None), the trigger rule applied in the worker."""
-    if recipe["trigger"] == "drift":
-        drift, go = drift_decision(snap, ref, recipe["threshold"])
-    else:
-        drift, go = (None if ref is None else
-                     js_drift(ref.centers, ref.counts, snap.centers, snap.counts)), True
-    return drift, (design_job(snap, init, recipe) if go else None)
-
-
-FAILED = object()   # a live job whose worker call raised
-
+from streamq.nodes.schemes.backward import BackwardAdapter
+from streamq.nodes.schemes.window import Recipe, WindowDesigns
 
 def _versions(s: int, at_start, events) -> tuple:
     """IndexBlock.versions of a block from ``s``: per channel, the version in
@@ -259,18 +211,11 @@ class Encoder(Node):
             self.delay = int(est["window"])
         self.int16 = spec.int_bits == 16
         self.in_latency = spec.latency
-        self.min_interval = c.min_interval.samples(self.rate)
-        self.apply_after = c.apply_after.samples(self.rate)
-        self.late = 0                   # live: codebooks applied after their due sample
-        self.scheduled: list = []       # designed, not yet due: (at, channel, codebook, bits)
         self.version = [0] * self.C
         self.th_rows = None             # thresholds of the codebooks in force, stacked
         self.updates = 0
         self.side_bits = 0
         self.pending: list[CodebookUpdate] = []
-        self.ref = [None] * self.C      # snapshot each channel's codebook was designed on
-        self.last_design = [-(10 ** 18)] * self.C
-        self.drift = [None] * self.C
         self.backward = None
         self.scheme = self.scheme_state = None    # step and gain modes (nodes/schemes)
         self.in_force = [0] * self.C
@@ -285,7 +230,7 @@ class Encoder(Node):
             coding_info.update({"window": W, "hop": H, "model": c.model, "shape": c.shape,
                                 "scale": c.scale, "options": {k: v for k, v in self.opts.items()
                                                               if k in ("loading",)}})
-            self.backward = coding.BackwardAdapter(coding_info, self.C)
+            self.backward = BackwardAdapter(coding_info, self.C)
             first = self.backward.current[0]
             self.current = list(self.backward.current)
             bits0 = 0
@@ -304,8 +249,6 @@ class Encoder(Node):
             if self.standard:  # G.711 mu-law decodes its two zero codes alike: 255 levels
                 self.L = coding_info["levels"] = first.size
             self.current = [first] * self.C
-        # the newest design of each channel: the warm start of the next one
-        self.designed = list(self.current)
         # the first codebook of every channel is in force from sample 0
         for ch in range(self.C):
             self._announce(0, ch, self.current[ch], bits0)
@@ -316,19 +259,16 @@ class Encoder(Node):
         # live runs: designs go to the worker process; finished ones apply when due (at a
         # block boundary or inside a block), or at the next block if late
         self.live = bool(ctx.live and ctx.offload is not None) and self.replay is None
-        # live: [channel, snapshot_at, snapshot, result, (codebook, bits, version) or None]
-        self.jobs = collections.deque()
-        self.next_version = list(self.version)
-        if self.live and c.adapt in ("trailing", "lookahead"):
-            # designs start as soon as the estimator's snapshot is ready
-            specs["pdf"].extra["subscribe"](self)
-        self.worker_errors: list[str] = []
-        self.design_errors = 0          # offline designs that failed (codebook kept)
-        self.design_error = ""
-        self.recipe = {"method": c.method, "levels": self.L, "design_from": c.design_from,
-                       "model": c.model, "opts": self.opts, "grid_bits": c.grid_bits,
-                       "standard": self.standard, "trigger": c.trigger,
-                       "threshold": c.drift_threshold}
+        self.window = None     # trailing and lookahead: designs from the estimator's windows
+        if c.adapt in ("trailing", "lookahead"):
+            recipe = Recipe(c.method, self.L, c.design_from, c.model, self.opts, c.grid_bits,
+                            self.standard, c.trigger, c.drift_threshold)
+            self.window = WindowDesigns(recipe, list(self.current),
+                                        min_interval=c.min_interval.samples(self.rate),
+                                        apply_after=c.apply_after.samples(self.rate),
+                                        warm_start=c.warm_start)
+            if self.live:   # designs start as soon as the estimator's snapshot is ready
+                specs["pdf"].extra["subscribe"](self.window)
         self.preroll_index = int(first.encode(np.zeros(1))[0])
         self.delay_line = DelayLine(self.delay, self.C)
         self.dtype = index_dtype(self.L)
@@ -362,7 +302,7 @@ class Encoder(Node):
             # announced for the meter: the reach of the widest step (the decoder
             # derives every step itself: no side information)
             return self.scheme.widest(), 0
-        from streamq.nodes.schemes.gain import GainScheme
+        from streamq.nodes.schemes.gain import GainScheme, unit_blocks
         size = c.gain_block.samples(self.rate)
         if size < 1:
             raise self.fail("gain_block", "a gain block must hold at least 1 sample")
@@ -481,39 +421,6 @@ class Encoder(Node):
         self.updates += 1
         self.side_bits += bits
 
-    # -- adaptive designs -----------------------------------------------------
-    def _consider(self, snap) -> bool:
-        """Whether this snapshot should trigger a redesign (trigger rule)."""
-        ch = snap.channel
-        if snap.at_sample - self.last_design[ch] < self.min_interval:
-            return False
-        if self.config.trigger != "drift":
-            return True
-        drift, go = drift_decision(snap, self.ref[ch], self.config.drift_threshold)
-        self.drift[ch] = drift
-        return go
-
-    def _design(self, snap):
-        """The design for one snapshot (offline), or None. A design that fails
-        (a window the method cannot design on) keeps the codebook in force; the
-        failure is counted and the last one named in the report, and the next
-        snapshot is tried as usual. (Live runs: a failing design fails its
-        worker job, counted in ``worker_errors``.)"""
-        init = self.designed[snap.channel] if self.config.warm_start else None
-        try:
-            return design_job(snap, init, self.recipe)
-        except (StreamqError, ArithmeticError) as exc:
-            self.design_errors += 1
-            self.design_error = (f"design on the window ending at sample {snap.at_sample}, "
-                                 f"channel {snap.channel} failed: {exc}")
-            return None
-
-    def _designed(self, ch: int, snap, cb) -> None:
-        """Book-keeping of a finished design (the snapshot it came from)."""
-        self.designed[ch] = cb
-        self.ref[ch] = snap
-        self.last_design[ch] = snap.at_sample
-
     # 16-bit input: the 65,536-entry table pays for itself on long stretches only;
     # an adaptive codebook that codes one hop (a few thousand samples) searches
     LUT_FROM = 16_384
@@ -542,8 +449,7 @@ class Encoder(Node):
         if self.backward is not None or self.replaying or self.delay or self.pending:
             return False
         if self.live:
-            jobs = self.jobs
-            return not jobs or jobs[0][3] is None
+            return self.window is None or self.window.nothing_due()
         return self.config.adapt == "fixed"
 
     def _live_step(self, s: int, e: int, x: np.ndarray, frames: int) -> Packet:
@@ -552,8 +458,7 @@ class Encoder(Node):
         re-encodes its channel from that sample on."""
         out = np.empty((frames, self.C), dtype=self.dtype)
         self.kernel(x, self.th_rows, out)
-        jobs = self.jobs
-        if not jobs or jobs[0][3] is None:
+        if self.window is None or self.window.nothing_due():
             return Packet(IndexBlock(out, s, self.rate, _versions(s, self.in_force, ())))
         at_start = list(self.in_force)
         self._live_designs(s, e, None)
@@ -618,20 +523,10 @@ class Encoder(Node):
                     changes[u.channel].append((u.at_sample, cb))
             elif self.live:
                 self._live_designs(s, e, changes)
-            elif self.config.adapt in ("trailing", "lookahead"):
+            elif self.window is not None:
                 snaps = [ev for ev in inputs["pdf"].events
                          if getattr(ev, "counts", None) is not None and s <= ev.at_sample < e]
-                for ev in sorted(snaps, key=lambda ev: (ev.at_sample, ev.channel)):
-                    if not self._consider(ev):
-                        continue
-                    done = self._design(ev)
-                    if done is None:
-                        continue
-                    self._designed(ev.channel, ev, done[0])
-                    self.scheduled.append((ev.at_sample + self.apply_after, ev.channel, *done))
-                # codebooks fall due in sample order (apply_after is the same for all)
-                while self.scheduled and self.scheduled[0][0] < e:
-                    at, ch, cb, bits = self.scheduled.pop(0)
+                for at, ch, cb, bits in self.window.offline(snaps, e):
                     self._announce(at, ch, cb, bits)
                     changes[ch].append((at, self.current[ch]))
             for ch in range(self.C):
@@ -652,94 +547,34 @@ class Encoder(Node):
 
     def _live_designs(self, s: int, e: int, changes) -> None:
         """Live runs (audio thread): apply the designs the worker process has
-        delivered, in order, each at its due sample (the snapshot's sample plus
-        ``apply_after``), or at this block's first sample if that has passed
-        (counted as late). Only reference swaps happen here."""
-        jobs = self.jobs
-        while jobs:
-            job = jobs[0]
-            res = job[3]
-            if res is None:            # not back from the worker yet
-                return
-            if res is FAILED:
-                jobs.popleft()
-                continue
-            ready = job[4]
-            at = job[1] + self.apply_after
-            if ready is not None and at >= e:
-                return                 # due in a later block
-            jobs.popleft()
-            if ready is None:
-                continue
-            if at < s:
-                self.late += 1
-                at = s
-            ch = job[0]
+        delivered that fall due in this block (only reference swaps)."""
+        for at, ch, ready in self.window.due_live(s, e):
             self._announce(at, ch, *ready)
             if changes is not None:
                 changes[ch].append((at, self.current[ch]))
 
-    def requests(self, t: int) -> list:
-        """Live runs (at a hop of the estimator): the designs to run with the
-        snapshots of sample ``t``, as (channel, job, args). Each design is
-        warm-started from the channel's newest one, as offline."""
-        out = []
-        for ch in range(self.C):
-            if any(j[0] == ch and j[3] is None for j in list(self.jobs)):
-                continue   # the worker is behind: skip, the next snapshot is fresher
-            if t - self.last_design[ch] < self.min_interval:
-                continue
-            init = self.designed[ch] if self.config.warm_start else None
-            out.append((ch, live_design_job, (self.ref[ch], init, self.recipe)))
-            self.jobs.append([ch, t, None, None, None])   # filled in when delivered
-        return out
-
-    def failed(self, exc: BaseException) -> None:
-        """Live runs (worker result thread): the hop's job failed. Keep the codebooks
-        in force, mark the waiting jobs failed, and say what went wrong."""
-        self.worker_errors.append(f"{type(exc).__name__}: {exc}")
-        for job in list(self.jobs):
-            if job[3] is None:
-                job[3] = FAILED
-
-    def deliver(self, snaps, results) -> None:
-        """Live runs (worker result thread): finished designs, in job order. The
-        bookkeeping for the next request (warm start, drift reference, interval)
-        is done here; the audio thread applies them when due."""
-        for ch, res in results:
-            for job in list(self.jobs):
-                if job[0] == ch and job[3] is None:
-                    drift, done = res
-                    self.drift[ch] = drift
-                    if done is not None:
-                        self._designed(ch, snaps[ch], done[0])
-                        # numbered now (designs apply in delivery order), so the audio
-                        # thread only swaps references
-                        self.next_version[ch] += 1
-                        v = self.next_version[ch]
-                        job[4] = (done[0].with_version(v), done[1], v)
-                    job[2] = snaps[ch]
-                    job[3] = res     # set last: the audio thread reads it as "ready"
-                    break
+    @property
+    def drift(self) -> list:
+        """The newest drift figure per channel (None where none was measured)."""
+        return list(self.window.state.drift) if self.window is not None else [None] * self.C
 
     def report(self):
-        extra = {"worker_errors": len(self.worker_errors),
-                 "worker_error": self.worker_errors[-1]} if self.worker_errors else {}
-        if self.design_errors:
-            extra.update(design_errors=self.design_errors, design_error=self.design_error)
+        extra = self.window.report() if self.window is not None else {}
         if self.live and self.config.adapt == "trailing":
-            extra["late_codebooks"] = self.late
+            extra["late_codebooks"] = self.window.late
         return {**extra, "codebook_updates": self.updates, "side_info_bits": self.side_bits,
-                "levels": self.L, "latency_frames": self.delay,
-                "drift": [d for d in self.drift]}
+                "levels": self.L, "latency_frames": self.delay, "drift": self.drift}
 
     def get_state(self):
-        st = {"version": list(self.version), "current": list(self.current), "pending": list(self.pending),
-              "ref": list(self.ref), "last_design": list(self.last_design),
+        """Everything needed to continue the stream: the codebooks in force and
+        their versions, announcements not yet sent, counters, the delay line,
+        and the adaptive scheme's own state."""
+        st = {"version": list(self.version), "in_force": list(self.in_force),
+              "current": list(self.current), "pending": list(self.pending),
               "updates": self.updates, "side_bits": self.side_bits,
-              "designed": list(self.designed), "scheduled": list(self.scheduled),
-              "design_errors": (self.design_errors, self.design_error),
               "delay_line": self.delay_line.get_state()}
+        if self.window is not None:
+            st["window"] = self.window.get_state()
         if self.backward is not None:
             st["backward"] = self.backward.get_state()
         if self.scheme is not None:
@@ -748,14 +583,13 @@ class Encoder(Node):
 
     def set_state(self, st):
         self.version, self.updates, self.side_bits = list(st["version"]), st["updates"], st["side_bits"]
+        self.in_force = list(st["in_force"])
         self.current, self.pending = list(st["current"]), list(st["pending"])
         self.th_rows = None
-        self.ref, self.last_design = list(st["ref"]), list(st["last_design"])
-        self.designed, self.scheduled = list(st["designed"]), list(st["scheduled"])
-        self.design_errors, self.design_error = st.get("design_errors", (0, ""))
         self.delay_line.set_state(st["delay_line"])
+        if self.window is not None:
+            self.window.set_state(st["window"])
         if self.backward is not None:
             self.backward.set_state(st["backward"])
         if self.scheme is not None:
             self.scheme_state = st["scheme"]
-            self.in_force = list(self.version)

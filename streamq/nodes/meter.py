@@ -9,6 +9,8 @@ difference of the two streams' declared latencies before comparing.
 
 from __future__ import annotations
 
+import copy
+
 import csv
 import math
 from array import array
@@ -574,6 +576,25 @@ class ErrorMeter(Node):
                 "bits_per_sample": None if fixed is None else fixed + side,
                 "side_info_bits_per_sample": side, "codebook_version": self.version[0],
                 "codebook_updates": self.updates, "seconds": self.m / self.rate}
+
+    #: everything the meter accumulates while it runs (its state; the rest is
+    #: set up by ``open`` from the configuration and the input streams)
+    RUNNING = ("t", "m", "sig", "noi", "ovn", "ovc", "seg_sum", "seg_n", "peak", "pend", "fill",
+               "rows", "win", "win_events", "spec_part", "spec_pos", "spec_acc", "spec_frames",
+               "bounds", "version", "side_bits", "updates", "levels_seen", "ent_counts",
+               "counting", "ent_acc", "ent_n", "spans", "span_counts", "picks", "cur_pick",
+               "tail", "tail_n")
+
+    def get_state(self) -> dict:
+        """Copies of everything in :data:`RUNNING`, and the reference delay line."""
+        st = {name: copy.deepcopy(getattr(self, name)) for name in self.RUNNING}
+        st["refdelay"] = self.refdelay.get_state()
+        return st
+
+    def set_state(self, st: dict) -> None:
+        for name in self.RUNNING:
+            setattr(self, name, copy.deepcopy(st[name]))
+        self.refdelay.set_state(st["refdelay"])
 
     def report(self):
         C = self.C

@@ -56,6 +56,16 @@ def block_gains(x, a, size, count, peak, out):  # pragma: no cover - compiled
                 out[b, c] = math.sqrt(acc / size)
 
 
+def unit_blocks(x: np.ndarray, size: int) -> np.ndarray:
+    """Training samples for the unit codebook: each whole block of ``size``
+    samples divided by its RMS (silent blocks left out)."""
+    n = x.shape[0] // size
+    blocks = x[:n * size].reshape(n, size)
+    rms = np.sqrt(np.mean(blocks * blocks, axis=1))
+    keep = rms > 0
+    return (blocks[keep] / rms[keep, None]).ravel()
+
+
 @dataclass(frozen=True)
 class GainState:
     """What the encoder carries between blocks.

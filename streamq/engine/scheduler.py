@@ -325,21 +325,21 @@ def _json_default(o):
     raise TypeError(type(o).__name__)
 
 
-def _finite(o):
-    """JSON has no inf/nan: write them as null."""
+def json_ready(o):
+    """JSON has no inf/nan: write them as null (in dicts, lists and tuples too)."""
     if isinstance(o, float) and not math.isfinite(o):
         return None
     if isinstance(o, dict):
-        return {k: _finite(v) for k, v in o.items()}
+        return {k: json_ready(v) for k, v in o.items()}
     if isinstance(o, (list, tuple)):
-        return [_finite(v) for v in o]
+        return [json_ready(v) for v in o]
     return o
 
 
 def write_report(out_dir: Path, report: dict[str, Any]) -> Path:
     """Write report.json atomically (temporary name, then rename)."""
     path = Path(out_dir) / "report.json"
-    text = json.dumps(_finite(json.loads(json.dumps(report, default=_json_default))), indent=2)
+    text = json.dumps(json_ready(json.loads(json.dumps(report, default=_json_default))), indent=2)
     try:
         with replacing(path) as f:
             f.write(text + "\n")

@@ -60,6 +60,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
+from streamq.engine.scheduler import json_ready
 from streamq.errors import StreamqError
 
 
@@ -416,16 +417,6 @@ def table_lines(res: dict[str, Any]) -> list[str]:
     return lines
 
 
-def _json_ready(o):
-    if isinstance(o, float) and not math.isfinite(o):
-        return None
-    if isinstance(o, dict):
-        return {k: _json_ready(v) for k, v in o.items()}
-    if isinstance(o, (list, tuple)):
-        return [_json_ready(v) for v in o]
-    return o
-
-
 # -- the command -----------------------------------------------------------------------------
 
 def add_parser(subparsers) -> None:
@@ -475,7 +466,7 @@ def run(args) -> int:
         if bar is not None:
             bar.close()
     if args.json:
-        print(json.dumps(_json_ready(res), indent=2))
+        print(json.dumps(json_ready(res), indent=2))
     else:
         for line in table_lines(res):
             print(line)

@@ -49,6 +49,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from streamq.batch.engines import DaskCluster, LocalPool
+from streamq.engine.scheduler import json_ready
 from streamq.errors import StreamqError
 from streamq.report.compare import (
     EXTRA_METHODS,
@@ -642,19 +643,9 @@ def write_csv(path: Path, points: list[dict[str, Any]]) -> None:
     _written(path, buf.getvalue())
 
 
-def _json_ready(o):
-    if isinstance(o, float) and not math.isfinite(o):
-        return None
-    if isinstance(o, dict):
-        return {k: _json_ready(v) for k, v in o.items()}
-    if isinstance(o, (list, tuple)):
-        return [_json_ready(v) for v in o]
-    return o
-
-
 def json_text(res: dict[str, Any]) -> str:
     """The sweep as JSON text (non-finite figures become null)."""
-    return json.dumps(_json_ready(res), indent=2) + "\n"
+    return json.dumps(json_ready(res), indent=2) + "\n"
 
 
 def write_json(path: Path, res: dict[str, Any]) -> None:

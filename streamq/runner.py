@@ -8,6 +8,7 @@ import time
 from pathlib import Path
 
 from streamq.engine.graph import Graph, load_graph
+from streamq.engine import checkpoint
 from streamq.engine.scheduler import RunResult, build, run_offline
 from streamq.errors import StreamqError
 
@@ -119,15 +120,23 @@ def write_report_pages(result: RunResult) -> list[Path]:
 PLOTS_PER_METER = 3
 
 
-def plot_workers(graph: Graph):
-    """The helper processes that will draw the run's plots (one per core, at
-    most one per plot; none for a graph without meters): a context manager,
-    see :class:`streamq.report.PlotWorkers`."""
+def plot_workers(graph_file) -> "contextlib.AbstractContextManager":
+    """The helper processes that will draw an offline run's plots (one per
+    core, at most one per plot; see :class:`streamq.report.PlotWorkers`), as
+    a context manager. They start before the graph is loaded, so that their
+    matplotlib imports overlap the loading and the run; the graph file is only
+    glanced at for its meters (``error-meter`` nodes). None for a live graph,
+    a graph without meters or a file that does not read: its plots, if any,
+    are then drawn in this process, as always."""
     import contextlib
-    meters = sum(1 for node in graph.nodes.values() if getattr(node, "role", None) == "meter")
-    if not meters:
-        return contextlib.nullcontext()
+    import tomllib
     try:
+        with open(graph_file, "rb") as f:
+            nodes = tomllib.load(f).get("nodes") or {}
+        uses = [n.get("use") for n in nodes.values() if isinstance(n, dict)]
+        meters = uses.count("error-meter")
+        if not meters or any(isinstance(u, str) and u.startswith("live-") for u in uses):
+            return contextlib.nullcontext()
         from streamq.report import PlotWorkers
         return PlotWorkers(PLOTS_PER_METER * meters)
     except Exception:            # no helpers: the plots are drawn here, as always
@@ -135,33 +144,60 @@ def plot_workers(graph: Graph):
 
 
 def run_graph_file(args) -> int:
+    # the plots' helper processes start first: they load matplotlib while the graph
+    # loads and runs
+    with plot_workers(args.graph):
+        return _run_graph_file(args)
+
+
+def _run_graph_file(args) -> int:
     graph = load_graph(args.graph, args.overrides, precheck=True)
     live = any(n.live_only for n in graph.nodes.values())
     if not live and getattr(args, "seconds", None) is not None:
         raise StreamqError(f"--seconds {args.seconds:g}: only live runs stop after a time; "
                            f"'{graph.name}' runs offline to the end of its sources (shorten a "
                            f"test-signal with --set NODE.seconds=...)")
+    resume = getattr(args, "resume", False)
+    if live and resume:
+        raise StreamqError(f"--resume: only offline runs resume; '{graph.name}' runs live")
     out = prepare_out_dir(Path(args.out) if args.out else default_out_dir(graph))
     if live:
         from streamq.live.runner import run_live
         return run_live(graph, out, args)
-    # the plots' helper processes start now: they load matplotlib while the graph runs
-    with plot_workers(graph):
-        built = build(graph, out)
-        bar = Progress(built.length, built.ctx.sample_rate, getattr(args, "quiet", False),
-                       graph.name)
+    fp = checkpoint.fingerprint(graph, args.overrides)
+    start, moved, ck = 0, {}, None
+    if resume:
+        ck = checkpoint.load(out, fp)
+        start = ck.position
+        moved = checkpoint.set_aside(ck)
+    built = build(graph, out)
+    if ck is not None:
         try:
-            result = run_offline(built, block=args.block, progress=bar)
-        finally:
-            bar.close()
-        # the nodes' buffers and series are in the files and the report now: let them
-        # go before plotting, which is when an hours-long run's memory peaks
-        del built
-        release_memory()
-        if not getattr(args, "quiet", False) or not result.complete:
-            for line in summary_lines(result):
-                print(line)
-        written = write_report_pages(result)
+            checkpoint.restore(built, ck, moved)
+        except BaseException:
+            for nid in built.graph.order:
+                try:
+                    built.graph.nodes[nid].close(False)
+                except Exception:
+                    pass
+            raise
+    bar = Progress(built.length, built.ctx.sample_rate, getattr(args, "quiet", False), graph.name)
+    try:
+        result = run_offline(built, block=args.block, progress=bar, start=start,
+                             checkpoint=lambda pos: checkpoint.save(out, fp, pos, built),
+                             checkpoint_every=checkpoint.every())
+    finally:
+        bar.close()
+    if result.complete:
+        checkpoint.clear(out)
+    # the nodes' buffers and series are in the files and the report now: let them
+    # go before plotting, which is when an hours-long run's memory peaks
+    del built
+    release_memory()
+    if not getattr(args, "quiet", False) or not result.complete:
+        for line in summary_lines(result):
+            print(line)
+    written = write_report_pages(result)
     if written and not getattr(args, "quiet", False):
         print(f"  report: {written[-1]}" if written[-1].suffix == ".html" else
               f"  plots: {len(written)} files")

@@ -222,4 +222,7 @@ class PlotWorkers:
             self._token = None
         if self.pool is not None:
             pool, self.pool = self.pool, None
+            if not wait:         # a failed run: nothing to draw, stop the helpers now
+                for process in list((getattr(pool, "_processes", None) or {}).values()):
+                    process.terminate()
             pool.shutdown(wait=wait, cancel_futures=True)

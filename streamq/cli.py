@@ -126,6 +126,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seconds", type=_seconds, help="live runs only: stop after this many seconds "
                                                     "(offline runs go to the end of their sources)")
     p.add_argument("--quiet", action="store_true", help="no progress bar or live meter")
+    p.add_argument("--resume", action="store_true",
+                   help="offline runs: continue an interrupted run from its last checkpoint in "
+                        "the output folder (same graph, --set values and inputs)")
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("check", help="validate a graph file without running it")

@@ -8,6 +8,7 @@ import time
 from pathlib import Path
 
 from streamq.engine.graph import Graph, load_graph
+from streamq.engine import checkpoint
 from streamq.engine.scheduler import RunResult, build, run_offline
 from streamq.errors import StreamqError
 
@@ -156,16 +157,39 @@ def _run_graph_file(args) -> int:
         raise StreamqError(f"--seconds {args.seconds:g}: only live runs stop after a time; "
                            f"'{graph.name}' runs offline to the end of its sources (shorten a "
                            f"test-signal with --set NODE.seconds=...)")
+    resume = getattr(args, "resume", False)
+    if live and resume:
+        raise StreamqError(f"--resume: only offline runs resume; '{graph.name}' runs live")
     out = prepare_out_dir(Path(args.out) if args.out else default_out_dir(graph))
     if live:
         from streamq.live.runner import run_live
         return run_live(graph, out, args)
+    fp = checkpoint.fingerprint(graph, args.overrides)
+    start, moved, ck = 0, {}, None
+    if resume:
+        ck = checkpoint.load(out, fp)
+        start = ck.position
+        moved = checkpoint.set_aside(ck)
     built = build(graph, out)
+    if ck is not None:
+        try:
+            checkpoint.restore(built, ck, moved)
+        except BaseException:
+            for nid in built.graph.order:
+                try:
+                    built.graph.nodes[nid].close(False)
+                except Exception:
+                    pass
+            raise
     bar = Progress(built.length, built.ctx.sample_rate, getattr(args, "quiet", False), graph.name)
     try:
-        result = run_offline(built, block=args.block, progress=bar)
+        result = run_offline(built, block=args.block, progress=bar, start=start,
+                             checkpoint=lambda pos: checkpoint.save(out, fp, pos, built),
+                             checkpoint_every=checkpoint.every())
     finally:
         bar.close()
+    if result.complete:
+        checkpoint.clear(out)
     # the nodes' buffers and series are in the files and the report now: let them
     # go before plotting, which is when an hours-long run's memory peaks
     del built

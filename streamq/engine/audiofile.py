@@ -170,6 +170,49 @@ class SafeWriter:
                             f"({why}); nothing was left under that name") from None
         self.frames += data.shape[0]
 
+    #: formats libsndfile can reopen to continue writing (a checkpoint closes the file,
+    #: so its header is whole, and reopens it to append)
+    CONTINUABLE = ("WAV", "WAVEX", "AIFF", "AU", "CAF", "W64", "RF64")
+
+    def checkpoint(self) -> dict:
+        """Make the frames written so far durable; what :meth:`resume` needs."""
+        import soundfile as sf
+        fmt = self._f.format if self._f is not None else None
+        if fmt not in self.CONTINUABLE:
+            return {"frames": self.frames, "clipped": self.clipped, "continuable": False,
+                    "format": fmt}
+        f, self._f = self._f, None
+        try:
+            f.close()
+            self._f = sf.SoundFile(str(self.tmp), "r+")
+            self._f.seek(0, sf.SEEK_END)
+        except Exception as exc:
+            raise self.fail(f"{self.path}: could not make a checkpoint ({_short(exc)})") from None
+        return {"frames": self.frames, "clipped": self.clipped, "continuable": True,
+                "format": fmt}
+
+    def resume(self, info: dict, earlier: Path) -> None:
+        """Continue the file ``earlier`` (written by an interrupted run) from the
+        checkpoint ``info``, in place of the empty file this writer opened."""
+        import soundfile as sf
+        if not info.get("continuable"):
+            raise self.fail(f"{self.path}: a {info.get('format')} file cannot be continued; "
+                            f"run again without --resume")
+        self._f.close()
+        try:
+            os.replace(earlier, self.tmp)
+            self._f = sf.SoundFile(str(self.tmp), "r+")
+            if self._f.frames < info["frames"]:
+                raise ValueError(f"it holds {self._f.frames} frames, the checkpoint "
+                                 f"{info['frames']}")
+            self._f.truncate(info["frames"])
+            self._f.seek(0, sf.SEEK_END)
+        except Exception as exc:
+            self.discard()
+            raise self.fail(f"{self.path}: cannot continue the earlier file ({_short(exc)})") \
+                from None
+        self.frames, self.clipped = int(info["frames"]), int(info["clipped"])
+
     def close(self) -> None:
         """Close and move into place (also used after an interruption)."""
         if self._f is None:

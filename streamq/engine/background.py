@@ -36,6 +36,9 @@ class BackgroundWriter:
             item = self._q.get()
             if item is _STOP:
                 return
+            if isinstance(item, threading.Event):   # drain(): all before it is written
+                item.set()
+                continue
             if self.error is not None:
                 continue
             try:
@@ -47,6 +50,17 @@ class BackgroundWriter:
         if self.error is not None:
             raise self.error
         self._q.put(item)
+
+    def drain(self) -> None:
+        """Wait until everything queued so far is written; raise a kept failure."""
+        if self._t.is_alive():
+            mark = threading.Event()
+            self._q.put(mark)
+            while not mark.wait(0.5):
+                if not self._t.is_alive():
+                    break
+        if self.error is not None:
+            raise self.error
 
     def close(self) -> None:
         """Write what is queued, stop the thread, raise a kept failure."""

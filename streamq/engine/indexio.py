@@ -395,6 +395,39 @@ class IndexWriter:
         head = CHUNK_HEAD.pack(start, data.shape[0], self.channels, self.dtype.itemsize, 0)
         self._record(REC_CHUNK, head + data.tobytes())
 
+    # -- checkpoints ------------------------------------------------------------
+    _CARRIED = ("frames", "bytes", "codebook_updates", "skipped_events", "_stored",
+                "_pending", "_pending_frames", "_pending_events", "_has_codebook", "_last_at")
+
+    def checkpoint(self) -> dict:
+        """Make the bytes written so far durable; what :meth:`resume` needs (the
+        records not yet written travel in the checkpoint)."""
+        try:
+            self._f.flush()
+        except OSError as exc:
+            raise self._fail(f"could not make a checkpoint ({exc.strerror or exc})") from None
+        return {k: (list(v) if isinstance(v, (list, deque)) else v)
+                for k, v in ((k, getattr(self, k)) for k in self._CARRIED)}
+
+    def resume(self, info: dict, earlier: Path) -> None:
+        """Continue the file ``earlier`` (written by an interrupted run) from the
+        checkpoint ``info``, in place of the new file this writer opened."""
+        self._f.close()
+        try:
+            os.replace(earlier, self.tmp)
+            self._f = open(self.tmp, "r+b")
+            if os.path.getsize(self.tmp) < info["bytes"]:
+                raise OSError(f"it holds fewer bytes than the checkpoint ({info['bytes']})")
+            self._f.truncate(info["bytes"])
+            self._f.seek(0, os.SEEK_END)
+        except OSError as exc:
+            self._f = None
+            raise self._fail(f"cannot continue the earlier file ({exc})") from None
+        for k in self._CARRIED:
+            v = info[k]
+            setattr(self, k, deque(v) if k == "_pending_events" else
+                    list(v) if isinstance(v, list) else v)
+
     # -- closing --------------------------------------------------------------
     def close(self, complete: bool = True) -> None:
         """Write what is pending and the end record, then move the file into place."""

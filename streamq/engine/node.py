@@ -234,6 +234,21 @@ class Node:
     def report(self) -> dict[str, Any] | None:
         return None
 
+    def checkpoint(self) -> Any:
+        """The node's state at a checkpoint of an offline run (default:
+        :meth:`get_state`). Sinks also make what they have written durable."""
+        return self.get_state()
+
+    def resume(self, state: Any, earlier: Path | None = None) -> None:
+        """Continue from a checkpoint (default: :meth:`set_state`). Sinks get the
+        file the interrupted run wrote (``earlier``), set aside, to continue."""
+        self.set_state(state)
+
+    def output_files(self) -> list[Path]:
+        """Sinks: the files they write, as (final path, temporary path) pairs
+        flattened (a checkpoint sets the earlier run's aside before resuming)."""
+        return []
+
     def get_state(self) -> dict[str, Any]:
         return {}
 

@@ -202,7 +202,9 @@ def _catch_up(behind: dict[str, BackgroundWriter]) -> None:
 
 def run_offline(built: BuiltGraph, *, block: int | None = None,
                 progress: Callable[[int, int | None], None] | None = None,
-                handle_signals: bool = True) -> RunResult:
+                handle_signals: bool = True, start: int = 0,
+                checkpoint: Callable[[int], None] | None = None,
+                checkpoint_every: float = 5.0) -> RunResult:
     """Run a built graph from its file/test sources to the end.
 
     Parameters
@@ -210,15 +212,19 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
     block : frames per step (default 65,536); any value gives the same outputs.
     progress : called as progress(done_frames, total_frames) after each step.
     handle_signals : turn SIGINT/SIGTERM into a clean stop (report marked incomplete).
+    start : the sample the nodes' state is at (a resumed run; see engine.checkpoint).
+    checkpoint : called as checkpoint(sample) at a step boundary every
+        ``checkpoint_every`` seconds of wall time, once every node has stepped
+        every block (the nodes that run behind have caught up).
     """
     if built.length is None:
         raise StreamqError("this graph has an endless source; run it live")
     step = REPLAY_BLOCK if block is None else int(block)
     total = built.length
-    pos = 0
+    pos = int(start)
     complete = False
     error: str | None = None
-    t0 = time.perf_counter()
+    t0 = last_checkpoint = time.perf_counter()
     old_handlers = {}
     stop_requested: list[str] = []
 
@@ -247,6 +253,12 @@ def run_offline(built: BuiltGraph, *, block: int | None = None,
                 pos += n
                 if progress:
                     progress(pos, total)
+                if checkpoint is not None and pos < total and \
+                        time.perf_counter() - last_checkpoint >= checkpoint_every:
+                    for worker in behind.values():
+                        worker.drain()
+                    checkpoint(pos)
+                    last_checkpoint = time.perf_counter()
             _catch_up(behind)
             for nid in built.graph.order:
                 built.graph.nodes[nid].finish()

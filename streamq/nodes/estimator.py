@@ -17,6 +17,8 @@ encoder computes it for its drift trigger and reports it.
 
 from __future__ import annotations
 
+import copy
+
 from concurrent.futures import BrokenExecutor, wait
 from typing import Literal
 
@@ -453,7 +455,8 @@ class PdfEstimator(Node):
 
     def get_state(self):
         return {"buf": self.buf.copy(), "written": self.written, "pending": list(self.pending),
-                "last": list(self.last), "snapshots": self.snapshots}
+                "last": list(self.last), "snapshots": self.snapshots,
+                "rows": copy.deepcopy(self.rows)}
 
     def set_state(self, state):
         self.buf = state["buf"].copy()
@@ -461,3 +464,4 @@ class PdfEstimator(Node):
         self.pending = list(state["pending"])
         self.last = list(state["last"])
         self.snapshots = state["snapshots"]
+        self.rows = copy.deepcopy(state["rows"])

@@ -103,6 +103,24 @@ class IndexSink(Node):
         except StreamqError as exc:
             raise self.fail("path", str(exc)) from None
 
+    def checkpoint(self):
+        if self.background is not None:
+            self.background.drain()
+        return {"stepped": self.stepped, "writer": self.writer.checkpoint()}
+
+    def resume(self, state, earlier=None):
+        if earlier is None:
+            raise self.fail("path", f"{self.writer.path}: the interrupted run's file is gone; "
+                                    f"run again without --resume")
+        try:
+            self.writer.resume(state["writer"], earlier)
+        except StreamqError as exc:
+            raise self.fail("path", str(exc)) from None
+        self.stepped = state["stepped"]
+
+    def output_files(self):
+        return [self.writer.path, self.writer.tmp] if self.writer is not None else []
+
     def report(self):
         w = self.writer
         if w is None:

@@ -98,6 +98,20 @@ class FileSink(Node):
                 # one that is already there with an empty one.
                 self.writer.discard()
 
+    def checkpoint(self):
+        if self.background is not None:
+            self.background.drain()
+        return self.writer.checkpoint()
+
+    def resume(self, state, earlier=None):
+        if earlier is None:
+            raise self.fail("path", f"{self.writer.path}: the interrupted run's file is gone; "
+                                    f"run again without --resume")
+        self.writer.resume(state, earlier)
+
+    def output_files(self):
+        return [self.writer.path, self.writer.tmp] if self.writer is not None else []
+
     def report(self):
         if self.writer is None:
             return None

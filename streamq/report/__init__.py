@@ -144,10 +144,22 @@ def _draw_portable(*args) -> tuple[bool, Any]:
 
 
 def _start_worker() -> None:
-    """A helper process's start: leave Ctrl-C to the run, then import
-    matplotlib and load the fonts (what the first plot would pay)."""
+    """A helper process's start: leave Ctrl-C to the run, end with the run
+    (a run killed outright must not leave its helpers waiting for ever), then
+    import matplotlib and load the fonts (what the first plot would pay)."""
+    import os
     import signal
+    import threading
+    import time
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    parent = os.getppid()
+
+    def watch() -> None:
+        while os.getppid() == parent:
+            time.sleep(0.5)
+        os._exit(0)
+
+    threading.Thread(target=watch, name="streamq-plot-watch", daemon=True).start()
     from streamq.report import plots as P
     P.warm_up()
 

@@ -17,6 +17,7 @@ outputs and the report equal those of an uninterrupted run.
 from __future__ import annotations
 
 import hashlib
+import io
 import os
 import pickle
 from dataclasses import dataclass
@@ -30,6 +31,29 @@ NAME = ".streamq-checkpoint"
 EVERY = 5.0
 #: input fields of node configurations that name files a run reads
 _INPUT_FIELDS = ("path", "train", "codebooks_from")
+
+
+class _StateUnpickler(pickle.Unpickler):
+    """Reads a checkpoint, refusing every class but the state types of streamq's
+    own nodes, numpy arrays and a few plain containers: a checkpoint file cannot
+    run code it brings along (a plain ``pickle.load`` would)."""
+
+    _ALLOWED_MODULES = ("streamq.",)
+    _ALLOWED = {("collections", "deque"), ("collections", "OrderedDict"),
+                ("builtins", "set"), ("builtins", "frozenset"), ("builtins", "slice"),
+                ("builtins", "complex"), ("builtins", "bytearray"), ("builtins", "range"),
+                ("numpy", "dtype"), ("numpy", "ndarray"),
+                ("numpy.core.multiarray", "_reconstruct"), ("numpy._core.multiarray", "_reconstruct"),
+                ("numpy.core.multiarray", "scalar"), ("numpy._core.multiarray", "scalar"),
+                ("numpy.core.numeric", "_frombuffer"), ("numpy._core.numeric", "_frombuffer"),
+                ("array", "array"), ("array", "_array_reconstructor"),
+                ("copyreg", "_reconstructor"), ("builtins", "object")}
+
+    def find_class(self, module: str, name: str):
+        if (module, name) in self._ALLOWED or (module.startswith(self._ALLOWED_MODULES)
+                                               and not name.startswith("_")):
+            return super().find_class(module, name)
+        raise pickle.UnpicklingError(f"{module}.{name} is not a streamq state type")
 
 
 def every() -> float:
@@ -114,7 +138,7 @@ def load(out_dir: Path, fp: dict) -> Checkpoint:
     except OSError as exc:
         raise StreamqError(f"--resume: {path}: cannot read it ({exc.strerror or exc})") from None
     try:
-        ck = pickle.loads(data)
+        ck = _StateUnpickler(io.BytesIO(data)).load()
         if not isinstance(ck, Checkpoint):
             raise TypeError(type(ck).__name__)
     except Exception as exc:

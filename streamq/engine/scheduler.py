@@ -348,10 +348,15 @@ def json_ready(o):
     return o
 
 
+def report_text(report: dict[str, Any]) -> str:
+    """A report as ``report.json`` holds it (numpy values plain, non-finite as null)."""
+    return json.dumps(json_ready(json.loads(json.dumps(report, default=_json_default))), indent=2)
+
+
 def write_report(out_dir: Path, report: dict[str, Any]) -> Path:
     """Write report.json atomically (temporary name, then rename)."""
     path = Path(out_dir) / "report.json"
-    text = json.dumps(json_ready(json.loads(json.dumps(report, default=_json_default))), indent=2)
+    text = report_text(report)
     try:
         with replacing(path) as f:
             f.write(text + "\n")

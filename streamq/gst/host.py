@@ -231,9 +231,9 @@ def write_report_file(path: Path, report: dict[str, Any]) -> Path:
     """Write a report as ``report.json`` is written, under any file name
     (temporary name, renamed once whole)."""
     from streamq.engine.audiofile import replacing
-    from streamq.engine.scheduler import _finite, _json_default
+    from streamq.engine.scheduler import report_text
     path = Path(path)
-    text = json.dumps(_finite(json.loads(json.dumps(report, default=_json_default))), indent=2)
+    text = report_text(report)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         with replacing(path) as f:

@@ -521,7 +521,7 @@ class Encoder(Node):
                     self.updates += 1
                     self.side_bits += int(u.side_info_bits)
                     changes[u.channel].append((u.at_sample, cb))
-            elif self.live:
+            elif self.live and self.window is not None:
                 self._live_designs(s, e, changes)
             elif self.window is not None:
                 snaps = [ev for ev in inputs["pdf"].events

@@ -33,8 +33,9 @@ def plot_names(meter_id: str) -> dict[str, str]:
 
 
 def _warn(what: str, exc: BaseException) -> None:
-    msg = " ".join(str(exc).split()) or type(exc).__name__
-    print(f"streamq: warning: {what} failed ({type(exc).__name__}: {msg[:200]})", file=sys.stderr)
+    kind = exc.kind if isinstance(exc, PlotFailed) else type(exc).__name__
+    msg = " ".join(str(exc).split()) or kind
+    print(f"streamq: warning: {what} failed ({kind}: {msg[:200]})", file=sys.stderr)
 
 
 def write_report_files(out_dir: str | Path, report: dict[str, Any], *,
@@ -123,24 +124,25 @@ def _draw(kind: str, mid: str, meter: dict[str, Any], rate: float, out_dir: Path
 
 
 class PlotFailed(Exception):
-    """A plot's exception that could not travel back from a helper process
-    as itself (its message names the original type)."""
+    """A plot's exception as it travels back from a helper process: its type's
+    name (``kind``) and its message (any exception travels, picklable or not)."""
+
+    def __init__(self, kind: str, message: str):
+        super().__init__(message)
+        self.kind = kind
+
+    def __reduce__(self):
+        return (PlotFailed, (self.kind, str(self)))
 
 
 def _draw_portable(*args) -> tuple[bool, Any]:
     """:func:`_draw` in a helper process: ``(True, path)``, or ``(False,
-    exception)`` when the plot raised, so that a failing plot is told apart
+    PlotFailed)`` when the plot raised, so that a failing plot is told apart
     from a failing process."""
-    import pickle
     try:
         return True, _draw(*args)
     except Exception as exc:
-        try:
-            pickle.loads(pickle.dumps(exc))
-        except Exception:
-            msg = " ".join(str(exc).split())
-            exc = PlotFailed(f"{type(exc).__name__}: {msg}" if msg else type(exc).__name__)
-        return False, exc
+        return False, PlotFailed(type(exc).__name__, str(exc))
 
 
 def _start_worker() -> None:

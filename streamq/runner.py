@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import re
 import sys
 import time
@@ -128,7 +129,6 @@ def plot_workers(graph_file) -> "contextlib.AbstractContextManager":
     glanced at for its meters (``error-meter`` nodes). None for a live graph,
     a graph without meters or a file that does not read: its plots, if any,
     are then drawn in this process, as always."""
-    import contextlib
     import tomllib
     try:
         with open(graph_file, "rb") as f:
@@ -184,7 +184,7 @@ def _run_graph_file(args) -> int:
     bar = Progress(built.length, built.ctx.sample_rate, getattr(args, "quiet", False), graph.name)
     try:
         result = run_offline(built, block=args.block, progress=bar, start=start,
-                             checkpoint=lambda pos: checkpoint.save(out, fp, pos, built),
+                             checkpoint=lambda pos, b=built: checkpoint.save(out, fp, pos, b),
                              checkpoint_every=checkpoint.every())
     finally:
         bar.close()

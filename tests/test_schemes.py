@@ -14,10 +14,9 @@ import soundfile as sf
 
 from chain_util import run_toml
 from live_util import jack_server  # noqa: F401  (the live test's JACK server fixture)
-from streamq.design.kernels import encode_span
 from streamq.errors import StreamqError
 from streamq.nodes.schemes.gain import GainScheme, block_gains
-from streamq.nodes.schemes.step import MULTIPLIERS, StepScheme, coding_info, step_decode, step_encode
+from streamq.nodes.schemes.step import MULTIPLIERS, StepScheme, coding_info
 
 RATE = 48000
 

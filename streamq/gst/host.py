@@ -8,7 +8,6 @@ between GStreamer and a :class:`PipelineChain`.
 
 from __future__ import annotations
 
-import json
 import re
 import tempfile
 from pathlib import Path

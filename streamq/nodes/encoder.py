@@ -30,7 +30,6 @@ from streamq.engine.blocks import CodebookUpdate, IndexBlock, Packet, StreamSpec
 from streamq.engine.delay import DelayLine
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
-from streamq.errors import StreamqError
 from streamq.nodes import coding
 from streamq.nodes.schemes.backward import BackwardAdapter
 from streamq.nodes.schemes.window import Recipe, WindowDesigns

@@ -48,6 +48,7 @@ from concurrent.futures import CancelledError
 from pathlib import Path
 from typing import Any, Callable
 
+from streamq.batch.driver import BatchProgress
 from streamq.batch.engines import DaskCluster, LocalPool
 from streamq.engine.scheduler import json_ready
 from streamq.errors import StreamqError
@@ -312,9 +313,10 @@ def _make_engine(workers: int | None, cluster: str | None, points: int):
     return _PointPool(max(1, min(n, points)))
 
 
-class SweepProgress:
+class SweepProgress(BatchProgress):
     """Points finished out of all, as a tqdm bar on stderr; nothing when
-    ``quiet`` or when stderr is not a terminal (as ``streamq batch``)."""
+    ``quiet`` or when stderr is not a terminal (as ``streamq batch``, whose
+    ``note`` and ``close`` it shares)."""
 
     def __init__(self, total: int, quiet: bool, label_text: str):
         self.bar = None
@@ -333,17 +335,6 @@ class SweepProgress:
             if self.failed:
                 self.bar.set_postfix_str(f"{self.failed} failed", refresh=False)
             self.bar.update(1)
-
-    def note(self, text: str) -> None:
-        if self.bar is not None:
-            self.bar.write(text, file=sys.stderr)
-        else:
-            print(text, file=sys.stderr)
-
-    def close(self) -> None:
-        if self.bar is not None:
-            self.bar.close()
-
 
 class _NoSignals:
     """Stand-in for the batch's signal handling when the caller keeps its own."""

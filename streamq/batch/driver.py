@@ -130,6 +130,37 @@ class BatchProgress:
             self.bar.close()
 
 
+def finished_jobs(done_q: "queue.Queue", submitted: int, stop, stop_file: Path, engine, bar,
+                  what: str):
+    """(job, future) of each submitted job as it finishes, in completion order.
+    At the first stop request the jobs not started are cancelled and the running
+    ones told (``stop_file``) to stop at the end of their current step; ``what``
+    names them in the note that says so."""
+    stopping = False
+    received = 0
+    while received < submitted:
+        if stop.requests and not stopping:
+            stopping = True
+            stop_file.touch()
+            engine.cancel_pending()
+            bar.note(f"streamq: stopping: finishing the current step of the running {what} "
+                     f"(Ctrl-C again to stop at once)")
+        try:
+            yield done_q.get(timeout=POLL)
+        except queue.Empty:
+            continue
+        received += 1
+
+
+def stopped_by_request(res: dict, stop) -> dict:
+    """A job whose worker failed after a stop request (a worker that got the
+    terminal's Ctrl-C too) counts as interrupted, not failed."""
+    if stop.requests and res["status"] == "failed" and \
+            str(res["error"]).startswith("worker failed"):
+        res.update(status="interrupted", error="stopped: " + res["error"])
+    return res
+
+
 class _signals_held:
     """Block SIGINT/SIGTERM in this thread (and so in the processes it starts)
     for the duration; a signal that came meanwhile is handled on exit."""
@@ -293,7 +324,7 @@ def _run_jobs(jobs, states, args, stop: _StopRequests, bar: BatchProgress,
     from streamq.batch.engines import make_engine
     engine = None
     engine_name = "none (every file already done)"
-    killed = stopping = False
+    killed = False
     audio = 0.0
     t0 = time.perf_counter()
     try:
@@ -318,19 +349,8 @@ def _run_jobs(jobs, states, args, stop: _StopRequests, bar: BatchProgress,
                     raise StreamqError(f"cannot start the batch workers: {one_line(exc)}") from None
             if n_workers == 0:
                 bar.note(f"streamq: {engine_name} has no workers yet; the files wait for some")
-            received = 0
-            while received < submitted:
-                if stop.requests and not stopping:
-                    stopping = True
-                    stop_file.touch()
-                    engine.cancel_pending()
-                    bar.note("streamq: stopping: finishing the current step of the running files "
-                             "(Ctrl-C again to stop at once)")
-                try:
-                    job, fut = done_q.get(timeout=POLL)
-                except queue.Empty:
-                    continue
-                received += 1
+            for job, fut in finished_jobs(done_q, submitted, stop, stop_file, engine, bar,
+                                          "files"):
                 res = _result_of(job, fut)
                 for w in res.get("page_warnings") or []:
                     bar.note(f"streamq: warning: {job['input']}: {w}")
@@ -339,10 +359,7 @@ def _run_jobs(jobs, states, args, stop: _StopRequests, bar: BatchProgress,
                         bar.note(f"streamq: warning: {job['input']}: plots and report.html not "
                                  f"written ({res['error']})")
                     continue
-                if stop.requests and res["status"] == "failed" and \
-                        res["error"].startswith("worker failed"):
-                    # workers that got the terminal's Ctrl-C too
-                    res.update(status="interrupted", error="stopped: " + res["error"])
+                stopped_by_request(res, stop)
                 states[job["input"]].update(status=res["status"], error=res.get("error"))
                 if res["status"] == "done":
                     audio += float(res.get("audio_seconds") or 0.0)

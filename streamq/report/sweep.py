@@ -48,7 +48,7 @@ from concurrent.futures import CancelledError
 from pathlib import Path
 from typing import Any, Callable
 
-from streamq.batch.driver import BatchProgress
+from streamq.batch.driver import BatchProgress, finished_jobs, stopped_by_request
 from streamq.batch.engines import DaskCluster, LocalPool
 from streamq.engine.scheduler import json_ready
 from streamq.errors import StreamqError
@@ -67,8 +67,6 @@ EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 #: Block lengths (ms) tried for schemes that work on blocks, unless --blocks says otherwise.
 DEFAULT_BLOCKS_MS = (8.0, 16.0, 32.0, 64.0)
 MIN_BITS, MAX_BITS = 1, 16
-#: Seconds between looks at the queue of finished points (and at stop requests).
-POLL = 0.1
 
 # Fixed-rate Lloyd-Max quantizers of a unit-variance Gaussian at 1 to 5 bits
 # (2 to 32 levels): mean squared error as printed in J. Max, "Quantizing for
@@ -474,7 +472,7 @@ def sweep(audio: str | Path, bits: str | int | list[int], schemes: str | list[st
 
         bar = SweepProgress(len(jobs), quiet, f"sweep {audio.name}")
         engine = None
-        killed = stopping = False
+        killed = False
         t0 = time.perf_counter()
         stop = _StopRequests() if handle_signals else _NoSignals()
         with stop:
@@ -496,23 +494,9 @@ def sweep(audio: str | Path, bits: str | int | list[int], schemes: str | list[st
                     except Exception as exc:
                         raise StreamqError(f"cannot start the sweep workers: "
                                            f"{one_line(exc)}") from None
-                received = 0
-                while received < submitted:
-                    if stop.requests and not stopping:
-                        stopping = True
-                        stop_file.touch()
-                        engine.cancel_pending()
-                        bar.note("streamq: stopping: finishing the current step of the running "
-                                 "points (Ctrl-C again to stop at once)")
-                    try:
-                        job, fut = done_q.get(timeout=POLL)
-                    except queue.Empty:
-                        continue
-                    received += 1
-                    res = _outcome(fut, one_line)
-                    if stop.requests and res["status"] == "failed" and \
-                            str(res["error"]).startswith("worker failed"):
-                        res.update(status="interrupted", error="stopped: " + res["error"])
+                for job, fut in finished_jobs(done_q, submitted, stop, stop_file, engine, bar,
+                                              "points"):
+                    res = stopped_by_request(_outcome(fut, one_line), stop)
                     entry = entries[job["index"]]
                     entry.update(res)
                     if res["status"] in ("done", "failed"):

@@ -344,11 +344,12 @@ class Encoder(Node):
         return Packet(IndexBlock(out, s, self.rate, _versions(s, at_start, events)), tuple(events))
 
     def _book(self, u: CodebookUpdate) -> None:
-        """Count an announcement the scheme made, and queue it."""
+        """Count an announcement (made here, by a scheme, or replayed), its
+        version now in force, and queue it."""
         self.version[u.channel] = self.in_force[u.channel] = u.version
         self.pending.append(u)
         self.updates += 1
-        self.side_bits += u.side_info_bits
+        self.side_bits += int(u.side_info_bits)
 
     def _open_replay(self, ctx) -> None:
         from streamq.engine.indexio import IndexReader
@@ -414,11 +415,8 @@ class Encoder(Node):
             v = self.version[ch] = version
         self.current[ch] = cb
         self.th_rows = None
-        self.in_force[ch] = v
-        self.pending.append(CodebookUpdate(v, t, ch, np.asarray(cb.thresholds),
-                                           np.asarray(cb.levels), bits, self.config.method))
-        self.updates += 1
-        self.side_bits += bits
+        self._book(CodebookUpdate(v, t, ch, np.asarray(cb.thresholds), np.asarray(cb.levels),
+                                  bits, self.config.method))
 
     # 16-bit input: the 65,536-entry table pays for itself on long stretches only;
     # an adaptive codebook that codes one hop (a few thousand samples) searches
@@ -514,11 +512,7 @@ class Encoder(Node):
                     cb = Codebook(levels=u.levels, thresholds=u.thresholds, version=u.version)
                     self.current[u.channel] = cb
                     self.th_rows = None
-                    self.version[u.channel] = u.version
-                    self.in_force[u.channel] = u.version
-                    self.pending.append(u)
-                    self.updates += 1
-                    self.side_bits += int(u.side_info_bits)
+                    self._book(u)
                     changes[u.channel].append((u.at_sample, cb))
             elif self.live and self.window is not None:
                 self._live_designs(s, e, changes)

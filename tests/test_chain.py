@@ -11,7 +11,7 @@ import pytest
 import soundfile as sf
 
 from chain_util import run_toml
-from streamq.engine.sideinfo import decode_levels, encode_levels
+from streamq.design.sideinfo import decode_levels, encode_levels
 
 RATE = 48000
 

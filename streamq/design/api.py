@@ -55,12 +55,9 @@ from streamq.design.compander import (
     optimal_compander_pdf,
 )
 from streamq.design.ecsq import ecsq_histogram, ecsq_pdf
-from streamq.design.lloyd import (
-    lloyd_max_histogram,
-    lloyd_max_pdf,
-    lloyd_max_samples,
-    sample_histogram,
-)
+from streamq.design.histogram import sample_histogram
+from streamq.design.lloyd import lloyd_max_histogram, lloyd_max_samples
+from streamq.design.lloyd_pdf import lloyd_max_pdf
 from streamq.design.optimal import MAX_DP_LEVELS, MAX_DP_POINTS, optimal_histogram
 from streamq.design.pdfs import PdfModel, pdf_histogram, pdf_model
 from streamq.design.report import (

@@ -40,7 +40,7 @@ from streamq.design._validate import (
     finite_array,
 )
 from streamq.design.codebook import Codebook
-from streamq.design.lloyd import HistogramPrefix, histogram_prefix
+from streamq.design.histogram import HistogramPrefix, histogram_prefix
 from streamq.design.pdfs import PdfModel, pdf_histogram, pdf_model
 from streamq.design.report import evaluate_histogram, evaluate_pdf, make_report
 from streamq.errors import StreamqError

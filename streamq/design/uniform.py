@@ -31,7 +31,7 @@ from scipy.optimize import minimize_scalar
 
 from streamq.design._validate import check_levels
 from streamq.design.codebook import Codebook
-from streamq.design.lloyd import histogram_prefix
+from streamq.design.histogram import histogram_prefix
 from streamq.design.pdfs import PdfModel, pdf_model
 from streamq.design.report import evaluate_histogram, evaluate_pdf, make_report
 from streamq.errors import StreamqError

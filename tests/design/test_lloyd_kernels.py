@@ -1,4 +1,5 @@
-"""The compiled Lloyd-Max design kernels against their numpy definitions.
+"""The compiled Lloyd-Max design kernels against their numpy definitions
+(``tests/kernel_reference.py``, section Lloyd-Max on a histogram).
 
 Tolerances: where a kernel adds a sum in index order while the definition uses
 numpy's pairwise ``sum`` or a BLAS ``dot``, the two differ by rounding only;
@@ -14,10 +15,12 @@ import re
 import numpy as np
 import pytest
 
-from streamq.design import Codebook, lloyd_max_histogram
+import kernel_reference as ref
+from streamq.design import Codebook, histogram_prefix, lloyd_max_histogram
 from streamq.design import lloyd as ll
 from streamq.design import lloyd_kernels as K
-from streamq.engine.sideinfo import level_bits, round_levels
+from streamq.design import lloyd_steps as steps
+from streamq.design.sideinfo import level_bits, round_levels
 from streamq.errors import StreamqError
 
 RTOL = 1e-12
@@ -73,7 +76,7 @@ def _span(c):
 @pytest.mark.parametrize("name,c,w", HISTOGRAMS, ids=IDS)
 def test_prefix_sums_equal_numpy_definition(name, c, w):
     got = K.prefix_sums(c, w)
-    want = ll._prefix_arrays(c, w)
+    want = ref.prefix_arrays(c, w)
     s = _span(c)
     _close(got[1], want[1], s)                 # ref
     _close(got[0], want[0], s)                 # shifted
@@ -86,7 +89,7 @@ def test_prefix_sums_equal_numpy_definition(name, c, w):
 
 
 def _prefix(c, w):
-    return ll.histogram_prefix(c, w)
+    return histogram_prefix(c, w)
 
 
 @pytest.mark.parametrize("count", [2, 5, 64, 256])
@@ -94,7 +97,7 @@ def _prefix(c, w):
 def test_cube_root_start_equals_numpy_definition(name, c, w, count):
     pre = _prefix(c, w)
     got = K.cube_root_start(pre.shifted, pre.p0, count)
-    _close(got, ll._cube_root_start(pre, count), _span(pre.shifted))
+    _close(got, ref.cube_root_start(pre, count), _span(pre.shifted))
 
 
 def test_interp_walk_equals_numpy_interp():
@@ -105,7 +108,7 @@ def test_interp_walk_equals_numpy_interp():
         xp.sort()
         fp = rng.standard_normal(xp.size)
         x = np.sort(np.r_[rng.standard_normal(40) * 2, xp[:3]])
-        np.testing.assert_array_equal(K._interp_sorted(x, xp, fp), np.interp(x, xp, fp))
+        np.testing.assert_array_equal(steps._interp_sorted(x, xp, fp), np.interp(x, xp, fp))
 
 
 def test_cell_bounds_equal_searchsorted_on_doubled_centers():
@@ -121,14 +124,14 @@ def test_cell_bounds_equal_searchsorted_on_doubled_centers():
         if rng.random() < 0.1:
             y[rng.integers(y.size)] = np.nan
         b = np.zeros(y.size + 1, dtype=np.intp)
-        K._cell_bounds(shifted, y, b)
+        steps._cell_bounds(shifted, y, b)
         np.testing.assert_array_equal(b[1:-1], np.searchsorted(2 * shifted, y[:-1] + y[1:]))
 
 
 def _starts(pre, count, rng):
     """A cold start, a random warm start and one far too wide (empty cells)."""
     s = _span(pre.shifted)
-    yield ll._cube_root_start(pre, count)
+    yield ref.cube_root_start(pre, count)
     yield np.sort(rng.choice(pre.shifted, count)) + rng.standard_normal(count) * 1e-3 * s
     yield np.linspace(-3 * s, 3 * s, count)
 
@@ -150,7 +153,7 @@ def test_lloyd_iterate_equals_numpy_definition(name, c, w, count):
         for tol, max_iter in ((1e-7, 1000), (0.0, 300), (1e-3, 2)):
             y, it, conv, stuck, filled, hist = K.lloyd_iterate(
                 pre.shifted, pre.p01, pre.total2, np.ascontiguousarray(y0), tol, max_iter, True)
-            ry, rit, rconv, rhist, rfilled = ll._lloyd_core(pre, y0.copy(), tol, max_iter, True)
+            ry, rit, rconv, rhist, rfilled = ref.lloyd_core(pre, y0.copy(), tol, max_iter, True)
             assert conv == rconv
             if it != rit:
                 assert tol == 0.0 and abs(it - rit) == 1
@@ -169,68 +172,14 @@ def test_lloyd_max_histogram_equals_numpy_composition(name, c, w):
     """The public design (compiled) against the numpy definitions end to end."""
     for count in (4, 100):
         cb, rep = lloyd_max_histogram(c, w, count, record=True)
-        pre = ll.HistogramPrefix(c, *_numpy_prefix_args(c, w))
+        pre = ref.numpy_histogram_prefix(c, w)
         if pre.occupied == 1:
             continue
-        y, it, conv, hist, stuck = ll._lloyd_core(pre, ll._cube_root_start(pre, count),
+        y, it, conv, hist, stuck = ref.lloyd_core(pre, ref.cube_root_start(pre, count),
                                                   1e-7, 1000, True)
         assert (rep.iterations, rep.converged) == (it, conv)
         if stuck is None:
             _close(cb.levels, y + pre.ref, _span(c))
-
-
-def _numpy_prefix_args(c, w):
-    cs, ref, p01, total2, power, single, total = ll._prefix_arrays(c, w)
-    return cs, ref, p01, total2, power, 1 if single else -1, total
-
-
-def _warm_start_reference(init, centers, counts, n_levels):
-    """The warm-start rule in numpy (see ``lloyd_kernels._fits_window``): the
-    codebook in force, or None for a cold start."""
-    if init is None:
-        return None
-    lv = init.levels            # non-decreasing: the first and last are the extremes
-    if lv.size < n_levels:
-        return None
-    occupied = np.flatnonzero(counts > 0)
-    if occupied.size == 0:
-        return None
-    if lv[0] < centers[occupied[0]] or lv[-1] > centers[occupied[-1]]:
-        return None
-    if np.count_nonzero(lv[1:] > lv[:-1]) + 1 < n_levels:
-        return None
-    return init
-
-
-def _exact_codebook_reference(occupied, centers, n_levels):
-    """The exact codebook in numpy (see ``lloyd_kernels._exact_levels``): a
-    level on each occupied value, the spare ones a bin width apart beyond the
-    extremes."""
-    spare = n_levels - occupied.size
-    width = (centers[-1] - centers[0]) / max(len(centers) - 1, 1) or 1e-6
-    below = spare // 2
-    above = spare - below
-    lv = np.concatenate([occupied[0] - width * np.arange(below, 0, -1), occupied,
-                         occupied[-1] + width * np.arange(1, above + 1)])
-    th, ok = K.midpoint_thresholds(lv, False)
-    return Codebook._trusted(lv, th) if ok else Codebook(levels=lv)
-
-
-def _window_reference(method, c, w, count, init, grid_bits):
-    """What :func:`streamq.nodes.coding.window_codebook` computes, composed of
-    the numpy definitions: the occupied bins, the warm-start rule, the exact
-    codebook or the public design, the side-information code."""
-    from streamq import design as d
-    occupied = np.flatnonzero(w > 0)
-    if occupied.size == 0:
-        return None
-    warm = _warm_start_reference(init, c, w, count)
-    if method in ("lloyd-max", "optimal") and occupied.size <= count:
-        cb = _exact_codebook_reference(c[occupied], c, count)
-    else:
-        cb, _ = d.design(method, count, centers=c, weights=w, init=warm)
-    levels = round_levels(cb.levels, grid_bits)
-    return levels, cb.thresholds, level_bits(levels, grid_bits), warm
 
 
 def _inits(c, w, count):
@@ -256,7 +205,7 @@ def test_design_window_equals_the_numpy_composition(name, c, w, count):
     from streamq.nodes import coding
     for init in _inits(c, w, count) if w.sum() > 0 else [None]:
         try:
-            want = _window_reference("lloyd-max", c, w, count, init, 16)
+            want = ref.window_design("lloyd-max", c, w, count, init, 16)
         except StreamqError as exc:   # equal centers of occupied bins: no exact codebook
             with pytest.raises(StreamqError, match=re.escape(str(exc))):
                 coding.window_codebook("lloyd-max", count, c, w, init, {}, 16, False)
@@ -272,7 +221,7 @@ def test_design_window_equals_the_numpy_composition(name, c, w, count):
         status = K.design_window(c, w, count, lv, 2, 16, ll.HISTOGRAM_TOL, ll.HISTOGRAM_MAX_ITER)[0]
         if status != K.DONE:          # the rare route: one value or cells that stay empty
             assert status == (K.WARM if want[3] is not None else K.COLD)
-            pre = ll.histogram_prefix(c, w)
+            pre = histogram_prefix(c, w)
             y0 = ll._initial_levels(pre, count, want[3])
             assert pre.occupied == 1 or ll._lloyd_run(pre, y0, ll.HISTOGRAM_TOL,
                                                       ll.HISTOGRAM_MAX_ITER, False)[4] is not None

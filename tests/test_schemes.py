@@ -354,6 +354,51 @@ def test_gain_grid_rounding_and_silence():
         assert p.gain(k) * 1.5 >= peak and p.gain(k + 1) * 1.5 < peak
 
 
+
+@pytest.mark.parametrize("peak", [False, True])
+def test_gain_encoder_kernel_equals_numpy_definition(peak):
+    """The compiled gain encoder against its plain definition
+    (tests/kernel_reference.py), on steps of many lengths and positions,
+    with silent blocks and a NaN."""
+    import kernel_reference as ref
+    from streamq.design import Codebook
+    from streamq.nodes.schemes.gain import gain_encode
+    unit = Codebook(levels=[-2.0, -0.9, -0.3, 0.3, 0.9, 2.0])
+    g = GainScheme(unit, 48, 1.5, 6, peak, "lloyd-max")
+    rng = np.random.default_rng(7)
+    x = rng.laplace(size=(4000, 2)) * np.repeat(10.0 ** rng.uniform(-4, 0, 4000 // 400 + 1),
+                                                400)[:4000, None]
+    x[1000:1300] = 0.0
+    x[2222, 1] = np.nan
+    held = np.zeros((48, 2))
+    index = np.array([5, 9], dtype=np.int64)
+    pos = 0
+    for frames in (1, 7, 47, 48, 49, 61, 200, 1, 500, 4000):
+        frames = min(frames, 4000 - pos)
+        both = np.concatenate([held, x[pos:pos + frames]])
+        want, want_index, want_ks = ref.gain_encode(both, pos, 48, peak, g.top, 1.5, 64,
+                                                    g.thresholds, index)
+        out = np.empty((frames, 2), dtype=np.int16)
+        ks = np.empty((frames // 48 + 2, 2), dtype=np.int64)
+        nb = gain_encode(both, pos, 48, peak, g.top, 1.5, 64, g.thresholds, index, out, ks)
+        np.testing.assert_array_equal(out, want)
+        np.testing.assert_array_equal(ks[:nb], want_ks)
+        np.testing.assert_array_equal(index, want_index)
+        held = both[frames:]
+        pos += frames
+    assert pos == 4000
+
+
+def test_gain_grid_index_equals_numpy_definition():
+    import kernel_reference as ref
+    from streamq.design import Codebook
+    unit = Codebook(levels=[-1.5, -0.5, 0.5, 1.5])
+    rng = np.random.default_rng(3)
+    g = np.concatenate([10.0 ** rng.uniform(-12, 1, 5000), [0.0, np.nan, np.inf, 1.0]])
+    for peak in (False, True):
+        s = GainScheme(unit, 10, 1.5, 6, peak, "uniform")
+        np.testing.assert_array_equal(s.grid_index(g), ref.gain_grid_index(g, peak, s.top, 1.5, 64))
+
 # -- validation ---------------------------------------------------------------------------
 
 @pytest.mark.parametrize("fields,needle", [

@@ -334,8 +334,7 @@ class Encoder(Node):
         if self.config.adapt == "step":
             out, self.scheme_state = self.scheme.encode(x, self.scheme_state, self.dtype)
         else:
-            out, made, self.scheme_state = self.scheme.encode(x, s, self.scheme_state, self.dtype,
-                                                              self.span_kernel)
+            out, made, self.scheme_state = self.scheme.encode(x, s, self.scheme_state, self.dtype)
             for u in made:
                 self._book(u)
         events = [u for u in self.pending if u.at_sample < s + frames]

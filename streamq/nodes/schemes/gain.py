@@ -28,6 +28,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from numba import njit
 
+from streamq.design.kernels import encode_span
 from streamq.engine.blocks import CodebookUpdate
 
 
@@ -54,6 +55,58 @@ def block_gains(x, a, size, count, peak, out):  # pragma: no cover - compiled
                 for i in range(r0, r0 + size):
                     acc += x[i, c] * x[i, c]
                 out[b, c] = math.sqrt(acc / size)
+
+
+@njit(cache=True)
+def grid_step(g, peak, top, step_db, count):  # pragma: no cover - compiled
+    """Gain index of one measured gain ``g`` (see :meth:`GainScheme.grid_index`)."""
+    if peak:
+        g = g / top
+    if not g > 0.0:                      # silence, or NaN
+        return count - 1
+    steps = -20.0 * math.log10(g) / step_db
+    k = math.floor(steps) if peak else np.rint(steps)
+    if not k < count - 1:                # also +inf
+        return count - 1
+    return 0 if k < 0 else int(k)
+
+
+@njit(cache=True)
+def gain_encode(both, start, size, peak, top, step_db, count, thresholds, index, out, ks):  # pragma: no cover - compiled
+    """One step of the gain encoder, every channel, in one call.
+
+    ``both`` is the held block followed by this step's input (output row
+    ``i`` codes ``both[i]``); output rows ``[start, start + len(out))``.
+    Each block whose first output sample falls in this step gets its gain
+    from its own ``size`` input rows (:func:`block_gains`), its index on the
+    grid (:func:`grid_step`) and codes from there with ``thresholds[k]``
+    (the scaled unit thresholds of each index). ``index`` (per channel, the
+    index in force) is updated in place; ``ks[j, c]`` receives the index of
+    the ``j``-th new block. Returns the number of new blocks.
+    """
+    frames = out.shape[0]
+    C = out.shape[1]
+    e = start + frames
+    b0 = max(0, -(-(start - size) // size))
+    b1 = -(-(e - size) // size) if e > size else 0
+    nb = max(0, b1 - b0)
+    gains = np.empty((nb, C))
+    if nb:
+        block_gains(both, b0 * size - (start - size), size, nb, peak, gains)
+    for c in range(C):
+        pos = 0
+        k = index[c]
+        for j in range(nb):
+            t = (b0 + j + 1) * size - start        # this block's first output row
+            if t > pos:
+                encode_span(both[pos:t, c], thresholds[k], out[pos:t, c])
+            pos = t
+            k = grid_step(gains[j, c], peak, top, step_db, count)
+            ks[j, c] = k
+        if pos < frames:
+            encode_span(both[pos:frames, c], thresholds[k], out[pos:frames, c])
+        index[c] = k
+    return nb
 
 
 def unit_blocks(x: np.ndarray, size: int) -> np.ndarray:
@@ -109,6 +162,11 @@ class GainScheme:
         self.method = method
         self.top = float(abs(np.asarray(unit.levels)).max())
         self._table: dict[int, object] = {}
+        # the scaled unit thresholds of every index, one row each (the compiled
+        # encoder's table; codebook(k) takes its thresholds from here too). The
+        # silence index keeps those its grid point would have, so its codebook stays valid.
+        tg = 10.0 ** (-np.arange(self.count) * self.step_db / 20.0)
+        self.thresholds = np.asarray(unit.thresholds, dtype=np.float64)[None, :] * tg[:, None]
 
     def gain(self, k: int) -> float:
         """Gain of index ``k``; the last index is silence (gain 0)."""
@@ -122,23 +180,17 @@ class GainScheme:
         cb = self._table.get(k)
         if cb is None:
             from streamq.design import Codebook
-            g = self.gain(k)
-            tg = g if g > 0 else 10.0 ** (-(self.count - 1) * self.step_db / 20.0)
-            cb = self._table[k] = Codebook._trusted(np.asarray(self.unit.levels) * g,
-                                                    np.asarray(self.unit.thresholds) * tg)
+            cb = self._table[k] = Codebook._trusted(np.asarray(self.unit.levels) * self.gain(k),
+                                                    self.thresholds[k].copy())
         return cb
 
     def grid_index(self, g: np.ndarray) -> np.ndarray:
         """Gain indices of measured gains (0 = full scale; the last one,
-        silence, for blocks below the grid)."""
+        silence, for blocks below the grid): RMS gains rounded to the nearest
+        grid point, peak gains (over the codebook's top level) rounded down."""
         g = np.asarray(g, dtype=np.float64)
-        if self.peak:
-            g = g / self.top
-        with np.errstate(divide="ignore"):
-            steps = -20.0 * np.log10(g) / self.step_db
-        k = np.floor(steps) if self.peak else np.rint(steps)
-        return np.clip(np.nan_to_num(k, nan=self.count - 1, posinf=self.count - 1),
-                       0, self.count - 1).astype(np.int64)
+        return np.array([grid_step(v, self.peak, self.top, self.step_db, self.count)
+                         for v in g.ravel()], dtype=np.int64).reshape(g.shape)
 
     def first_index(self, scale: float) -> int:
         """The gain index in force before the first block (a source of RMS ``scale``)."""
@@ -148,8 +200,11 @@ class GainScheme:
         k = self.first_index(scale)
         return GainState(np.zeros((self.block, channels)), (k,) * channels, (1,) * channels)
 
-    def encode(self, x: np.ndarray, start: int, state: GainState, dtype, span_kernel):
+    def encode(self, x: np.ndarray, start: int, state: GainState, dtype):
         """Code output frames ``[start, start + len(x))`` (input delayed by one block).
+
+        One compiled call (:func:`gain_encode`) codes every channel; Python
+        only books an announcement for each new block.
 
         Returns
         -------
@@ -157,38 +212,27 @@ class GainScheme:
         announcements : list of CodebookUpdate, in sample order
         state : GainState
         """
-        N = self.block
-        frames, C = x.shape
+        size = self.block
+        frames, channels = x.shape
         both = np.concatenate([state.held, x]) if frames else state.held
-        e = start + frames
-        # blocks whose first input sample b*N lies in [start - N, e - N): they
-        # start at output sample (b + 1) * N inside this step
-        b0 = max(0, -(-(start - N) // N))
-        b1 = -(-(e - N) // N) if e > N else 0
-        nb = max(0, b1 - b0)
-        idx = np.empty((frames, C), dtype=dtype)
+        if both.dtype != np.float64:
+            both = both.astype(np.float64)
+        idx = np.empty((frames, channels), dtype=dtype)
+        index = np.array(state.index, dtype=np.int64)
+        ks = np.empty((frames // size + 2, channels), dtype=np.int64)
+        nb = gain_encode(both, start, size, self.peak, self.top, self.step_db, self.count,
+                         self.thresholds, index, idx, ks)
         events: list[CodebookUpdate] = []
-        index, version = list(state.index), list(state.version)
+        version = list(state.version)
         if nb:
-            gains = np.empty((nb, C))
-            block_gains(both, b0 * N - (start - N), N, nb, self.peak, gains)
-            ks = self.grid_index(gains)
-        for ch in range(C):
-            pos = 0
+            first = (-(-(start - size) // size) if start > size else 0) + 1
             for j in range(nb):
-                t = (b0 + j + 1) * N - start          # this block's first output row
-                if t > pos:
-                    span_kernel(both[pos:t, ch], self.codebook(index[ch]).thresholds,
-                                idx[pos:t, ch])
-                pos = t
-                index[ch] = int(ks[j, ch])
-                version[ch] += 1
-                cb = self.codebook(index[ch])
-                events.append(CodebookUpdate(version[ch], start + t, ch, cb.thresholds,
-                                             cb.levels, self.bits, self.method))
-            if pos < frames:
-                span_kernel(both[pos:frames, ch], self.codebook(index[ch]).thresholds,
-                            idx[pos:, ch])
-        events.sort(key=lambda u: (u.at_sample, u.channel))
+                at = (first + j) * size            # the block's first output sample
+                for ch in range(channels):
+                    version[ch] += 1
+                    cb = self.codebook(int(ks[j, ch]))
+                    events.append(CodebookUpdate(version[ch], at, ch, cb.thresholds,
+                                                 cb.levels, self.bits, self.method))
         held = both[frames:].copy()
-        return idx, events, replace(state, held=held, index=tuple(index), version=tuple(version))
+        return idx, events, replace(state, held=held, index=tuple(int(k) for k in index),
+                                    version=tuple(version))

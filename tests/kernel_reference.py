@@ -310,3 +310,27 @@ def gain_encode(both, start, size, peak, top, step_db, count, thresholds, index)
         if len(first_block):
             index[c] = ks[-1, c]
     return out, index, ks
+
+
+# =============================================================================
+# Index files: streamq.engine.indexio
+# =============================================================================
+
+
+def index_versions(events, channels, s, e):
+    """(from_sample, version) pairs in force in [s, e), written out plainly per
+    channel: the definition of ``IndexBlock.versions`` that the writer checks and
+    the reader rebuilds (:func:`streamq.engine.indexio.layout.versions_in_force`)."""
+    out = []
+    for c in range(channels):
+        evc = [ev for ev in events if ev.channel == c]
+        before = [ev for ev in evc if ev.at_sample <= s]
+        pairs = [(before[-1].at_sample, before[-1].version)] if before else []
+        for ev in evc:
+            if s < ev.at_sample < e:
+                if pairs and pairs[-1][0] == ev.at_sample:
+                    pairs[-1] = (ev.at_sample, ev.version)
+                else:
+                    pairs.append((ev.at_sample, ev.version))
+        out.append(tuple(pairs))
+    return tuple(out)

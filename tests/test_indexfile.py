@@ -27,6 +27,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from kernel_reference import index_versions
 from streamq.engine.blocks import (CodebookUpdate, IndexBlock, Packet, PdfSnapshot, SignalBlock,
                                    StreamSpec, index_dtype)
 from streamq.engine.indexio import IndexReader, IndexWriter, read_spec
@@ -67,23 +68,6 @@ def random_stream(rng, total, channels, L, n_events):
     return data, events
 
 
-def ref_versions(events, channels, s, e):
-    """(from_sample, version) pairs in force in [s, e), written out plainly per channel."""
-    out = []
-    for c in range(channels):
-        evc = [ev for ev in events if ev.channel == c]
-        before = [ev for ev in evc if ev.at_sample <= s]
-        pairs = [(before[-1].at_sample, before[-1].version)] if before else []
-        for ev in evc:
-            if s < ev.at_sample < e:
-                if pairs and pairs[-1][0] == ev.at_sample:
-                    pairs[-1] = (ev.at_sample, ev.version)
-                else:
-                    pairs.append((ev.at_sample, ev.version))
-        out.append(tuple(pairs))
-    return tuple(out)
-
-
 def packets(data, events, sizes):
     """Cut a stream into packets of the given sizes (cycled), events with their packet."""
     out, s, k = [], 0, 0
@@ -93,7 +77,7 @@ def packets(data, events, sizes):
         k += 1
         e = s + n
         evs = tuple(ev for ev in events if s <= ev.at_sample < e)
-        block = IndexBlock(data[s:e], s, RATE, ref_versions(events, channels, s, e))
+        block = IndexBlock(data[s:e], s, RATE, index_versions(events, channels, s, e))
         out.append(Packet(block, evs))
         s = e
     return out
@@ -263,7 +247,7 @@ def test_round_trip_any_block_sizes(seed, channels, L, total, n_events, wsizes, 
         for p in stream:
             assert p.start == pos and p.block.rate == RATE
             assert all(p.start <= e.at_sample < p.block.stop for e in p.events)
-            assert p.block.versions == ref_versions(events, channels, p.start, p.block.stop)
+            assert p.block.versions == index_versions(events, channels, p.start, p.block.stop)
             pos = p.block.stop
         assert pos == total
     # the asked sizes are honoured exactly (the last one may be short)

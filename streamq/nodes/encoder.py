@@ -337,6 +337,8 @@ class Encoder(Node):
             out, made, self.scheme_state = self.scheme.encode(x, s, self.scheme_state, self.dtype)
             for u in made:
                 self._book(u)
+        if not self.pending:        # the common case in the audio callback
+            return Packet(IndexBlock(out, s, self.rate, _versions(s, at_start, ())))
         events = [u for u in self.pending if u.at_sample < s + frames]
         self.pending = [u for u in self.pending if u.at_sample >= s + frames]
         events.sort(key=lambda u: (u.at_sample, u.channel))

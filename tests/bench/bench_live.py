@@ -271,8 +271,8 @@ def offline(seconds: float, by_node: bool = False) -> list[float]:
         adaptive = time_steps(True, x, Path(tmp))
     show("fixed codebook, wall", fixed["wall"])
     show("fixed codebook, thread CPU", fixed["cpu"])
-    show("adaptive every 100 ms, wall", adaptive["wall"])
-    show("adaptive every 100 ms, thread CPU", adaptive["cpu"])
+    show(f"adaptive ({SCHEME}), wall", adaptive["wall"])
+    show(f"adaptive ({SCHEME}), thread CPU", adaptive["cpu"])
     print(f"  codebook updates in the adaptive run: {adaptive['codebook_updates']} "
           f"over {adaptive['steps']} steps")
     print(f"  adaptive/fixed p99 (thread CPU): "

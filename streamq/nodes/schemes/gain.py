@@ -23,7 +23,7 @@ References
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 import numpy as np
 from numba import njit
@@ -233,6 +233,4 @@ class GainScheme:
                     cb = self.codebook(int(ks[j, ch]))
                     events.append(CodebookUpdate(version[ch], at, ch, cb.thresholds,
                                                  cb.levels, self.bits, self.method))
-        held = both[frames:].copy()
-        return idx, events, replace(state, held=held, index=tuple(int(k) for k in index),
-                                    version=tuple(version))
+        return idx, events, GainState(both[frames:].copy(), tuple(index.tolist()), tuple(version))

@@ -1,16 +1,20 @@
 """Plain numpy definitions of streamq's compiled kernels, for the tests.
 
 Each compiled (numba) kernel in ``streamq/`` is checked against a definition
-written here with numpy alone, in the most direct form: these functions are
-the specification, the kernels the fast route. One section per kernel family;
-the tests name the kernel and the definition side by side.
+written here with numpy alone (or plain Python), in the most direct form: these
+functions are the specification, the kernels and the fast routes of the package
+the implementation. One section per kernel family, in this order; the tests
+name the kernel and the definition side by side.
 
 Sections
 --------
 * Lloyd-Max on a histogram (``streamq.design.lloyd_steps``,
   ``streamq.design.lloyd_kernels``)
+* Forward gain adaptation (``streamq.nodes.schemes.gain``)
 * Index files (``streamq.engine.indexio``)
 * Rate-distortion sweep (``streamq.report.sweep``)
+* The pdf-estimator's windows (``streamq.nodes.estimator_kernels``)
+* The error meter's frame sums and spectrum segments (``streamq.nodes.metering``)
 """
 
 from __future__ import annotations
@@ -334,3 +338,22 @@ def index_versions(events, channels, s, e):
                     pairs.append((ev.at_sample, ev.version))
         out.append(tuple(pairs))
     return tuple(out)
+
+
+# =============================================================================
+# Rate-distortion sweep: streamq.report.sweep
+# =============================================================================
+
+
+def envelope_flags(points) -> list[bool]:
+    """Whether each point lies on the sweep's upper envelope, written out
+    plainly: its SNR is the best of all points at its total rate or below, and
+    no cheaper point reaches the same SNR (the definition of
+    :func:`streamq.report.sweep_files.envelope`)."""
+    out = []
+    for p in points:
+        cheaper = [q["snr_db"] for q in points if q["bits_per_sample"] <= p["bits_per_sample"]]
+        out.append(p["snr_db"] >= max(cheaper) and
+                   not any(q["snr_db"] == p["snr_db"] and
+                           q["bits_per_sample"] < p["bits_per_sample"] for q in points))
+    return out

@@ -15,7 +15,7 @@ import soundfile as sf
 
 from chain_util import run_toml
 from streamq.errors import StreamqError
-from streamq.report.compare import METHODS, SCHEMES, compare, table_lines
+from streamq.report.compare import DEFAULT_COMPARED, SCHEMES, compare, table_lines
 
 REPO = Path(__file__).resolve().parents[1]
 AUDIO = REPO / "graphs" / "audio" / "three-part-program.flac"  # invented 9 s mono program
@@ -69,13 +69,13 @@ def file_rms(path: Path) -> float:
 @pytest.fixture(scope="module")
 def four_bit(tmp_path_factory):
     out = tmp_path_factory.mktemp("compare4")
-    return compare(AUDIO, 4, METHODS, out_dir=out, handle_signals=False, plots=False), out
+    return compare(AUDIO, 4, DEFAULT_COMPARED, out_dir=out, handle_signals=False, plots=False), out
 
 
 def test_every_method_equals_its_own_single_run(four_bit, tmp_path):
     res, _ = four_bit
     got = by_method(res)
-    assert list(got) != [] and set(got) == set(METHODS)
+    assert list(got) != [] and set(got) == set(DEFAULT_COMPARED)
     rms = file_rms(AUDIO)
     fields = {
         # uniform over +-4 RMS of the file, as documented
@@ -111,7 +111,7 @@ def test_table_is_ranked_by_snr(four_bit):
     snrs = [r["snr_db"] for r in res["methods"]]
     assert snrs == sorted(snrs, reverse=True)
     lines = table_lines(res)
-    names = [line.split()[0] for line in lines[3:3 + len(METHODS)]]
+    names = [line.split()[0] for line in lines[3:3 + len(DEFAULT_COMPARED)]]
     assert names == [r["method"] for r in res["methods"]]
     for line, r in zip(lines[3:], res["methods"]):
         assert f"{r['snr_db']:.2f}" in line and f"{r['segsnr_db']:.2f}" in line

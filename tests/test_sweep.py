@@ -19,11 +19,12 @@ import pytest
 import soundfile as sf
 
 from chain_util import run_toml
+from kernel_reference import envelope_flags
 from streamq.design import lloyd_max_pdf
 from streamq.design.theory import ECSQ_GAP_BITS, ECSQ_GAP_DB, gaussian_rd_mse
 from streamq.errors import StreamqError
 from streamq.report.compare import (
-    METHODS,
+    DEFAULT_COMPARED,
     SCHEMES,
     build_compare_toml,
     encoder_settings,
@@ -175,12 +176,7 @@ def test_envelope_marks_the_best_snr_at_or_below_each_rate(swept):
     pts = res["points"]
     on = [p for p in pts if p["on_envelope"]]
     assert on
-    for p in pts:
-        cheaper = [q["snr_db"] for q in pts if q["bits_per_sample"] <= p["bits_per_sample"]]
-        assert p["on_envelope"] == (p["snr_db"] >= max(cheaper) and
-                                    not any(q["snr_db"] == p["snr_db"] and
-                                            q["bits_per_sample"] < p["bits_per_sample"]
-                                            for q in pts))
+    assert [p["on_envelope"] for p in pts] == envelope_flags(pts)
 
 
 def test_plot_is_written(swept):
@@ -197,7 +193,7 @@ def test_default_schemes_follow_what_compare_allows(short):
     pts = plan_points(short, rms, [2, 6], None, list(DEFAULT_BLOCKS_MS))
     for b in (2, 6):
         names = [p["scheme"] for p in pts if p["bits"] == b]
-        for m in METHODS:
+        for m in DEFAULT_COMPARED:
             blocks = SCHEMES[m].block_ms is not None if m in SCHEMES else False
             runs = m not in SCHEMES or SCHEMES[m].min_bits <= b <= SCHEMES[m].max_bits
             assert names.count(m) == (0 if not runs else len(DEFAULT_BLOCKS_MS) if blocks else 1)
@@ -235,7 +231,7 @@ def test_bits_and_blocks_forms():
 
 @pytest.mark.parametrize("bits", sorted(MAX_GAUSSIAN_MSE))
 def test_max_table_against_our_lloyd_max(bits):
-    """Max 1960, Table I, from memory (in streamq/report/sweep.py) against
+    """Max 1960, Table I, from memory (in streamq/report/sweep_files.py) against
     streamq.design's Lloyd-Max design of a unit Gaussian. Max prints four
     significant digits; his 16- and 32-level distortions are slightly off in
     the last digits (float64: 0.009501 and 0.002505), hence 3e-3 there."""

@@ -11,6 +11,7 @@ from typing import Literal
 import numpy as np
 from pydantic import Field, model_validator
 
+from streamq.decibels import amplitude_from_db
 from streamq.engine.blocks import Packet, SignalBlock, StreamSpec
 from streamq.engine.delay import DelayLine
 from streamq.engine.node import Duration, Node, NodeConfig, SourceNode
@@ -63,10 +64,6 @@ class LiveInput(SourceNode):
         block = SignalBlock(self.block, self.position, self.spec.rate)
         self.position += frames
         return Packet(block)
-
-
-def _db(x: float) -> float:
-    return 10.0 ** (x / 20.0)
 
 
 class LiveOutputConfig(NodeConfig):
@@ -123,12 +120,13 @@ class LiveOutput(Node):
             self.delay = DelayLine(d, self.C)
         self.rate = spec.rate
         # start quiet whatever the make-up gain: -40 dB at most, then ramp up
-        self.gain = _db(min(self.START_DB, self.config.gain_db + self.config.makeup_db))
-        self.target = _db(self.config.gain_db + self.config.makeup_db)
+        self.gain = amplitude_from_db(min(self.START_DB,
+                                          self.config.gain_db + self.config.makeup_db))
+        self.target = amplitude_from_db(self.config.gain_db + self.config.makeup_db)
         # ramp speed: the fade-in's 40 dB (or less) in `fade_in`; later changes use the same rate
         fade = max(1, self.config.fade_in.samples(self.rate))
         self.db_per_sample = 40.0 / fade
-        self.ceiling = _db(self.config.limit_dbfs)
+        self.ceiling = amplitude_from_db(self.config.limit_dbfs)
         self.limit_gain = 1.0
         self.release = 10.0 ** (1.0 / self.rate)  # limiter recovery: 20 dB per second
         self.limited_blocks = 0
@@ -143,7 +141,7 @@ class LiveOutput(Node):
 
     def set_gain(self, gain_db: float) -> None:
         """Ask for a new monitor gain; it is reached by a ramp, never a jump."""
-        self.target = _db(min(gain_db, 0.0) + self.config.makeup_db)
+        self.target = amplitude_from_db(min(gain_db, 0.0) + self.config.makeup_db)
 
     def step(self, frames, inputs):
         x = inputs["input"].block.data

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from streamq.decibels import amplitude_from_db
+
 CHUNK = 8192
 SCENES = ("tone", "noise", "drift")
 
@@ -94,13 +96,9 @@ _ROOM_TAPS = windowed_sinc(31, 0.0, 0.25)
 _VOICE_TAPS = windowed_sinc(63, 0.012, 0.16)
 
 
-def _db(level_dbfs: float) -> float:
-    return 10.0 ** (level_dbfs / 20.0)
-
-
 def tone(t: np.ndarray, frequency: float, level_dbfs: float) -> np.ndarray:
     """A sine whose peak is at ``level_dbfs`` (0 dBFS = full scale)."""
-    return _db(level_dbfs) * np.sin(2.0 * np.pi * frequency * t)
+    return amplitude_from_db(level_dbfs) * np.sin(2.0 * np.pi * frequency * t)
 
 
 def drift_scene(seed: int, channel: int, start: int, stop: int, rate: int, total: int) -> np.ndarray:
@@ -197,7 +195,7 @@ def render(scene: str, *, seed: int, channel: int, start: int, stop: int, rate: 
         return tone(t, frequency * (1.0 + 0.001 * channel), level_dbfs)
     if scene == "noise":
         # level_dbfs is the RMS level here; clip to full scale.
-        x = _db(level_dbfs) * _noise(seed, channel, start, stop, pdf)
+        x = amplitude_from_db(level_dbfs) * _noise(seed, channel, start, stop, pdf)
         return np.clip(x, -1.0, 1.0 - 2.0 ** -15)
     if scene == "drift":
         return drift_scene(seed, channel, start, stop, rate, total)

@@ -97,9 +97,12 @@ FIXED_LABELS = {
     "g711-mu": "G.711 mu-law table",
     "g711-a": "G.711 A-law table",
 }
-METHODS = ("uniform", "mu-law", "a-law", "lloyd-max", "lloyd-max-adaptive", "optimal", "ecsq",
-           *SCHEMES)
-EXTRA_METHODS = ("g711-mu", "g711-a")
+#: What ``compare`` and ``sweep`` run when not told: the fixed methods and every
+#: adaptive scheme of :data:`SCHEMES` (each where it runs at the word length).
+DEFAULT_COMPARED = ("uniform", "mu-law", "a-law", "lloyd-max", "lloyd-max-adaptive", "optimal",
+                    "ecsq", *SCHEMES)
+#: The G.711 tables: run only when asked for by name, and only at 8 bits.
+EIGHT_BIT_TABLES = ("g711-mu", "g711-a")
 EXIT_OK, EXIT_INTERRUPTED = 0, 130
 
 
@@ -155,10 +158,10 @@ def parse_methods(text: str, bits: int) -> list[str]:
         m = raw.strip().lower()
         if not m:
             continue
-        if m not in METHODS + EXTRA_METHODS:
+        if m not in DEFAULT_COMPARED + EIGHT_BIT_TABLES:
             raise StreamqError(f"--methods: unknown method '{m}' (choose from "
-                               f"{', '.join(METHODS + EXTRA_METHODS)})")
-        if m in EXTRA_METHODS and bits != 8:
+                               f"{', '.join(DEFAULT_COMPARED + EIGHT_BIT_TABLES)})")
+        if m in EIGHT_BIT_TABLES and bits != 8:
             raise StreamqError(f"--methods: {m} is the 8-bit G.711 table; use --bits 8")
         if not available(m, bits):
             sc = SCHEMES[m]
@@ -189,7 +192,7 @@ def encoder_settings(method: str, bits: int, audio: Path, rms: float, *,
     if method in ("mu-law", "a-law"):
         # the encoder loads a compander at 4 x scale; scale 0.25 puts its peak at full scale
         return {"method": method, "bits": bits, "scale": 0.25}
-    if method in EXTRA_METHODS:
+    if method in EIGHT_BIT_TABLES:
         return {"method": method, "bits": 8}
     if method == "lloyd-max-adaptive":
         return {"method": "lloyd-max", "bits": bits, "adapt": "trailing"}
@@ -275,7 +278,7 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str | None = None
     audio : the recording (any format libsndfile reads).
     bits : index word length of every method.
     methods : method names (see the module docstring) or a comma-separated string;
-        default: every one of :data:`METHODS` that runs at ``bits``.
+        default: every one of :data:`DEFAULT_COMPARED` that runs at ``bits``.
     out_dir : keep the run here (graph.toml, report.json, CSV files, plots,
         report.html); default: a temporary folder that is removed afterwards.
     entropy : ecsq target in bits/sample (default ``bits - 0.5``).
@@ -296,7 +299,7 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str | None = None
         raise StreamqError(f"--bits: give 1 to 16 bits, got {bits}")
     bits = int(bits)
     if methods is None:
-        methods = [m for m in METHODS if available(m, bits)]
+        methods = [m for m in DEFAULT_COMPARED if available(m, bits)]
     if max_rate is None:
         max_rate = bits + 0.25
     if not max_rate > 0:
@@ -430,8 +433,8 @@ def add_parser(subparsers) -> None:
     p.add_argument("audio", type=Path, metavar="AUDIOFILE", help="the recording to compare on")
     p.add_argument("--bits", type=int, required=True, help="index word length of every method")
     p.add_argument("--methods", default=None,
-                   help=f"comma-separated (default: {','.join(METHODS)}, those that run at "
-                        f"--bits; also {','.join(EXTRA_METHODS)} with --bits 8)")
+                   help=f"comma-separated (default: {','.join(DEFAULT_COMPARED)}, those that "
+                        f"run at --bits; also {','.join(EIGHT_BIT_TABLES)} with --bits 8)")
     p.add_argument("--max-rate", type=float, default=None, dest="max_rate",
                    help="total-rate budget, bits/sample with side information (default: "
                         "bits + 0.25); rows above it are marked")

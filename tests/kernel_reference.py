@@ -15,6 +15,7 @@ Sections
 * Rate-distortion sweep (``streamq.report.sweep``)
 * The pdf-estimator's windows (``streamq.nodes.estimator_kernels``)
 * The error meter's frame sums and spectrum segments (``streamq.nodes.metering``)
+* The error meter's frame sums and spectrum segments (``streamq.nodes.metering``)
 """
 
 from __future__ import annotations
@@ -357,3 +358,37 @@ def envelope_flags(points) -> list[bool]:
                    not any(q["snr_db"] == p["snr_db"] and
                            q["bits_per_sample"] < p["bits_per_sample"] for q in points))
     return out
+
+
+# =============================================================================
+# The error meter's frame sums and spectrum segments: streamq.nodes.metering
+# =============================================================================
+
+
+def meter_rows_reference(ref, x, bounds, versions, idx, active, L, F):
+    """The definition of :func:`streamq.nodes.metering.frames.meter_rows` over
+    a whole stream (``bounds`` and ``versions`` per sample): per-frame sums
+    added in row order (cumsum), the rows left over, index counts and the
+    peak error."""
+    e = x - ref
+    ov = ((ref < bounds[:, :, 0]) | (ref > bounds[:, :, 1])).astype(float)
+    rows = np.concatenate([ref, e, ov, versions[:, None]], axis=1)
+    C, K = ref.shape[1], ref.shape[0] // F
+    terms = np.concatenate([ref * ref, e * e, e * e * ov, ov], axis=1)[:K * F]
+    sums = np.cumsum(terms.reshape(K, F, 4 * C), axis=1)[:, -1]
+    vers = versions[F - 1:K * F:F]
+    counts = np.stack([np.bincount(idx[:, c], minlength=L) if active[c] else np.zeros(L, int)
+                       for c in range(C)])
+    return sums, vers, rows[K * F:], counts, np.abs(e).max()
+
+
+def window_segments_reference(ref, x, window):
+    """The definition of :func:`streamq.nodes.metering.spectrum.window_segments`
+    over a whole stream: reference channels then error channels (``x - ref``)
+    cut into windowed segments of ``N = len(window)``, shaped (2C, K, N), and
+    the rest, windowed, shaped (2C, n - K N)."""
+    N, C = window.shape[0], ref.shape[1]
+    K = ref.shape[0] // N
+    rows = np.concatenate([ref, x - ref], axis=1)
+    segs = rows[:K * N].reshape(K, N, 2 * C).transpose(2, 0, 1) * window
+    return segs, rows[K * N:].T * window[:rows.shape[0] - K * N]

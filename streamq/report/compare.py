@@ -151,27 +151,42 @@ def toml_value(v: Any) -> str:
     return toml_string(str(v))
 
 
-def parse_methods(text: str, bits: int) -> list[str]:
-    """The comma-separated method list, checked; duplicates dropped."""
+def checked_names(text: str | list[str], option: str, noun: str,
+                  check: Callable[[str], None] | None = None) -> list[str]:
+    """Method or scheme names from a comma-separated text or a list, lower-cased,
+    each known to ``compare`` (and passing ``check``), duplicates dropped; a bad
+    one is a one-line StreamqError naming ``option``."""
+    items = list(text) if isinstance(text, (list, tuple)) else str(text).split(",")
     out: list[str] = []
-    for raw in text.split(","):
-        m = raw.strip().lower()
-        if not m:
+    for raw in items:
+        name = str(raw).strip().lower()
+        if not name:
             continue
-        if m not in DEFAULT_COMPARED + EIGHT_BIT_TABLES:
-            raise StreamqError(f"--methods: unknown method '{m}' (choose from "
+        if name not in DEFAULT_COMPARED + EIGHT_BIT_TABLES:
+            raise StreamqError(f"{option}: unknown {noun} '{name}' (choose from "
                                f"{', '.join(DEFAULT_COMPARED + EIGHT_BIT_TABLES)})")
+        if check is not None:
+            check(name)
+        if name not in out:
+            out.append(name)
+    if not out:
+        raise StreamqError(f"{option}: give at least one {noun}")
+    return out
+
+
+def parse_methods(text: str, bits: int) -> list[str]:
+    """The comma-separated method list, checked (each must run at ``bits``);
+    duplicates dropped."""
+
+    def runs_at_bits(m: str) -> None:
         if m in EIGHT_BIT_TABLES and bits != 8:
             raise StreamqError(f"--methods: {m} is the 8-bit G.711 table; use --bits 8")
         if not available(m, bits):
             sc = SCHEMES[m]
             raise StreamqError(f"--methods: {m} runs at {sc.min_bits} to {sc.max_bits} bits "
                                f"(its default multipliers), not {bits}")
-        if m not in out:
-            out.append(m)
-    if not out:
-        raise StreamqError("--methods: give at least one method")
-    return out
+
+    return checked_names(text, "--methods", "method", runs_at_bits)
 
 
 def _ms(v: float) -> str:

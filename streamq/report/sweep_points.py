@@ -17,6 +17,7 @@ from streamq.report.compare import (
     SCHEMES,
     available,
     build_compare_toml,
+    checked_names,
     encoder_settings,
     label,
 )
@@ -95,20 +96,7 @@ def parse_schemes(text: str | list[str] | None) -> list[str] | None:
     """Scheme names (those of ``streamq compare``), checked; None for the default."""
     if text is None:
         return None
-    items = list(text) if isinstance(text, (list, tuple)) else str(text).split(",")
-    out: list[str] = []
-    for raw in items:
-        s = str(raw).strip().lower()
-        if not s:
-            continue
-        if s not in DEFAULT_COMPARED + EIGHT_BIT_TABLES:
-            raise StreamqError(f"--schemes: unknown scheme '{s}' (choose from "
-                               f"{', '.join(DEFAULT_COMPARED + EIGHT_BIT_TABLES)})")
-        if s not in out:
-            out.append(s)
-    if not out:
-        raise StreamqError("--schemes: give at least one scheme")
-    return out
+    return checked_names(text, "--schemes", "scheme")
 
 
 def _runs_at(scheme: str, bits: int) -> bool:

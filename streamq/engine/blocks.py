@@ -11,7 +11,7 @@ See ``DESIGN.md`` ("Data on the wires") for the rules these types follow.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Literal, Union
+from typing import Any, Callable, Literal, Union
 
 import numpy as np
 
@@ -142,6 +142,36 @@ class Packet:
 
 
 @dataclass(frozen=True, slots=True)
+class EstimatorLink:
+    """What a pdf-estimator tells the nodes that design from it (its
+    :class:`StreamSpec`'s ``estimator``).
+
+    Attributes
+    ----------
+    window, hop : int
+        Window length and hop, samples (a lookahead encoder delays its input
+        by one window).
+    bins : int
+        Histogram bins of each snapshot.
+    span : str
+        ``"tracked"`` (the window's own range) or ``"full-scale"``.
+    fit : str
+        The parametric PDF fitted to each window, or ``"none"``.
+    subscribe : callable
+        Live runs: ``subscribe(hook)`` asks the estimator to run the hook's
+        designs with each hop's snapshots in its worker job (see
+        ``PdfEstimator.subscribe``); offline, snapshots travel as events.
+    """
+
+    window: int
+    hop: int
+    bins: int
+    span: str
+    fit: str
+    subscribe: Callable[[Any], None]
+
+
+@dataclass(frozen=True, slots=True)
 class StreamSpec:
     """What a node's output stream looks like; worked out before the run starts.
 
@@ -154,7 +184,11 @@ class StreamSpec:
     int_bits : if every sample is exactly ``k / 2**(int_bits-1)`` for integer k
         (e.g. 16 for a 16-bit PCM source passed through unchanged), else None
     frames : total length in frames when known, else None (live input)
-    extra : anything else a downstream node may need (e.g. estimator window)
+    extra : plain JSON-able facts about the stream: an index stream's
+        ``coding``, ``n_levels`` and ``index_dtype`` (index files store them
+        as they are), a source's file or scene
+    estimator : set on a pdf-estimator's output: its settings and the live
+        subscription (:class:`EstimatorLink`)
     """
 
     kind: Literal["signal", "index"]
@@ -164,6 +198,7 @@ class StreamSpec:
     int_bits: int | None = None
     frames: int | None = None
     extra: dict[str, Any] = field(default_factory=dict)
+    estimator: EstimatorLink | None = None
 
 
 def _merge_versions(blocks) -> tuple:

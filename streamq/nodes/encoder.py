@@ -197,17 +197,17 @@ class Encoder(Node):
         est = None
         if c.pdf is not None:
             pspec = specs["pdf"]
-            est = pspec.extra.get("estimator")
+            est = pspec.estimator
             if est is None:
                 raise self.fail("pdf", f"node '{c.pdf}' is not a pdf-estimator")
             if pspec.channels != self.C:
                 raise self.fail("pdf", f"node '{c.pdf}' watches {pspec.channels} channel(s) but "
                                        f"the input has {self.C}")
-            if c.design_from == "model" and est.get("fit", "none") == "none":
+            if c.design_from == "model" and est.fit == "none":
                 raise self.fail("design_from", f"design_from = \"model\" needs a fit on "
                                                f"pdf-estimator '{c.pdf}' (set its field 'fit')")
         if c.adapt == "lookahead" and est is not None:
-            self.delay = int(est["window"])
+            self.delay = est.window
         self.int16 = spec.int_bits == 16
         self.in_latency = spec.latency
         self.version = [0] * self.C
@@ -267,7 +267,7 @@ class Encoder(Node):
                                         apply_after=c.apply_after.samples(self.rate),
                                         warm_start=c.warm_start)
             if self.live:   # designs start as soon as the estimator's snapshot is ready
-                specs["pdf"].extra["subscribe"](self.window)
+                specs["pdf"].estimator.subscribe(self.window)
         self.preroll_index = int(first.encode(np.zeros(1))[0])
         self.delay_line = DelayLine(self.delay, self.C)
         self.dtype = index_dtype(self.L)

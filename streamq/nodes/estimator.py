@@ -27,7 +27,7 @@ from pydantic import Field
 from scipy import optimize, special
 
 from streamq.engine.audiofile import unwritable
-from streamq.engine.blocks import Packet, PdfSnapshot, StreamSpec
+from streamq.engine.blocks import EstimatorLink, Packet, PdfSnapshot, StreamSpec
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
 from streamq.nodes.meter import Series, write_series_csv
@@ -297,11 +297,10 @@ class PdfEstimator(Node):
                            {"at_sample", "channel", "samples", "clipped"})
         self.out_dir = ctx.out_dir
         return StreamSpec("signal", rate, self.C, spec.latency, spec.int_bits, spec.frames,
-                          {**spec.extra, "subscribe": self.subscribe,
-                           "estimator": {"window": self.W, "hop": self.H,
-                                                        "bins": self.config.bins,
-                                                        "span": self.config.span,
-                                                        "fit": self.config.fit}})
+                          dict(spec.extra),
+                          estimator=EstimatorLink(self.W, self.H, self.config.bins,
+                                                  self.config.span, self.config.fit,
+                                                  self.subscribe))
 
     def _push(self, data: np.ndarray) -> None:
         """Append to the ring of the last W samples (both copies): O(len(data)),

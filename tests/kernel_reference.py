@@ -15,7 +15,6 @@ Sections
 * Rate-distortion sweep (``streamq.report.sweep``)
 * The pdf-estimator's windows (``streamq.nodes.estimator_kernels``)
 * The error meter's frame sums and spectrum segments (``streamq.nodes.metering``)
-* The error meter's frame sums and spectrum segments (``streamq.nodes.metering``)
 """
 
 from __future__ import annotations
@@ -358,6 +357,64 @@ def envelope_flags(points) -> list[bool]:
                    not any(q["snr_db"] == p["snr_db"] and
                            q["bits_per_sample"] < p["bits_per_sample"] for q in points))
     return out
+
+
+# =============================================================================
+# The pdf-estimator's windows: streamq.nodes.estimator_kernels
+# =============================================================================
+
+
+def grid_code(v):
+    """16-bit code of each value: ``int(v * 32768 + 32768)``, NaN and values
+    below -1 to code 0, values from 1 up to code 65535."""
+    f = np.asarray(v, dtype=np.float64) * 32768.0 + 32768.0
+    return np.where(f >= 0.0, np.minimum(f, 65535.0), 0.0).astype(np.int64)
+
+
+def code_counts(x):
+    """Per channel, how many samples of ``x`` (frames, channels) have each code."""
+    return np.stack([np.bincount(grid_code(x[:, c]), minlength=65536)
+                     for c in range(x.shape[1])])
+
+
+def piece_summary(x, clip_level):
+    """A piece's summary per channel (columns n, sum, m2, m3, m4, min, max,
+    peak, clipped): sums in sample order (cumsum's last entry), the central
+    sums about the piece's own mean."""
+    out = np.empty((x.shape[1], 9))
+    for c in range(x.shape[1]):
+        v = x[:, c]
+        total = np.cumsum(v)[-1]
+        d = v - total / v.size
+        d2 = d * d
+        out[c] = [v.size, total, np.cumsum(d2)[-1], np.cumsum(d2 * d)[-1],
+                  np.cumsum(d2 * d2)[-1], v.min(), v.max(), np.abs(v).max(),
+                  np.count_nonzero(np.abs(v) >= clip_level)]
+    return out
+
+
+def combined_summary(pieces):
+    """The summary of consecutive pieces (oldest first) as one, added left to
+    right with Pebay's (2008) pairwise update of the central sums (every
+    channel at once)."""
+    acc = pieces[0].copy()
+    for p in pieces[1:]:
+        na, nb = acc[:, 0], p[:, 0]
+        n = na + nb
+        delta = p[:, 1] / nb - acc[:, 1] / na
+        d2 = delta * delta
+        m2a, m3a, m4a = acc[:, 2], acc[:, 3], acc[:, 4]
+        m2b, m3b, m4b = p[:, 2], p[:, 3], p[:, 4]
+        m4 = (m4a + m4b + d2 * d2 * na * nb * (na * na - na * nb + nb * nb) / (n * n * n)
+              + 6.0 * d2 * (na * na * m2b + nb * nb * m2a) / (n * n)
+              + 4.0 * delta * (na * m3b - nb * m3a) / n)
+        m3 = (m3a + m3b + d2 * delta * na * nb * (na - nb) / (n * n)
+              + 3.0 * delta * (na * m2b - nb * m2a) / n)
+        m2 = m2a + m2b + d2 * na * nb / n
+        acc = np.stack([n, acc[:, 1] + p[:, 1], m2, m3, m4, np.minimum(acc[:, 5], p[:, 5]),
+                        np.maximum(acc[:, 6], p[:, 6]), np.maximum(acc[:, 7], p[:, 7]),
+                        acc[:, 8] + p[:, 8]], axis=1)
+    return acc
 
 
 # =============================================================================

@@ -1,7 +1,8 @@
 """Compiled inner loops (numba) for the few places where numpy's per-call
 overhead or extra passes matter: the live audio callback's small blocks, and
 the per-hop work of an adaptive chain (an encoder's stretch under one
-codebook, an estimator's window).
+codebook, the drift between two windows). The estimator's own loops are in
+streamq.nodes.estimator_kernels.
 
 On a shared machine the audio callback runs with cold caches after every
 wait, and each numpy call then costs tens of microseconds; one compiled call
@@ -197,69 +198,6 @@ def monitor_block(x, ref, g0_db, g1_db, limit_gain, release, ceiling, out):  # p
 
 
 @njit(cache=True, nogil=True)
-def window_summary(x, bins, tracked, clip_level):  # pragma: no cover - compiled
-    """Histogram and moments of one window in two passes.
-
-    The histogram equals ``streamq.nodes.estimator.window_histogram`` (unweighted)
-    exactly: the same edges and the same cell arithmetic. The moments are the
-    plain sums ``window_stats`` takes means of, added in sample order.
-
-    Returns
-    -------
-    (bin centers, counts, mean, variance, fourth central moment, peak |x|,
-    samples with |x| >= clip_level); the centers are those of
-    ``window_histogram``, ``lo + (k + 0.5) * width``.
-    """
-    n = x.shape[0]
-    lo = x[0]
-    hi = x[0]
-    total = 0.0
-    peak = 0.0
-    clipped = 0
-    for i in range(n):
-        v = x[i]
-        if v < lo:
-            lo = v
-        if v > hi:
-            hi = v
-        total += v
-        a = abs(v)
-        if a > peak:
-            peak = a
-        if a >= clip_level:
-            clipped += 1
-    if tracked:
-        if hi - lo < 1e-12:
-            lo, hi = lo - 1e-6, hi + 1e-6
-        pad = 0.5 * (hi - lo) / bins
-        lo, hi = lo - pad, hi + pad
-    else:
-        lo, hi = -1.0, 1.0
-    width = (hi - lo) / bins
-    inv = 1.0 / width
-    counts = np.zeros(bins)
-    mean = total / n
-    m2 = 0.0
-    m4 = 0.0
-    for i in range(n):
-        v = x[i]
-        k = int((v - lo) * inv)
-        if k < 0:
-            k = 0
-        elif k > bins - 1:
-            k = bins - 1
-        counts[k] += 1.0
-        d = v - mean
-        d2 = d * d
-        m2 += d2
-        m4 += d2 * d2
-    centers = np.empty(bins)
-    for k in range(bins):
-        centers[k] = lo + (k + 0.5) * width
-    return centers, counts, mean, m2 / n, m4 / n, peak, clipped
-
-
-@njit(cache=True, nogil=True)
 def _hist_edges(c):  # pragma: no cover - compiled
     n = c.shape[0]
     e = np.empty(n + 1)
@@ -324,7 +262,6 @@ def warm_up() -> None:
         # an encoder's stretch: a column of a block, a codebook's read-only thresholds
         encode_span(whole[:, 1], row[0], idx[:, 1])
         encode_span(whole[:, 1], np.zeros(1), idx[:, 1])
-    window_summary(np.zeros((2, 2))[:, 0], 4, True, 1.0)   # (a column of a window)
     js_divergence(np.arange(2.0), np.ones(2), np.arange(2.0), np.ones(2), 4)
     for out in (np.empty((2, 2)), np.empty((2, 2), dtype=np.float32)):  # (device buffers)
         monitor_block(whole, whole, 0.0, -1.0, 1.0, 1.0, 0.5, out)

@@ -30,6 +30,10 @@ from streamq.engine.audiofile import unwritable
 from streamq.engine.blocks import EstimatorLink, Packet, PdfSnapshot, StreamSpec
 from streamq.engine.node import Duration, Node, NodeConfig
 from streamq.engine.registry import register
+from streamq.nodes import estimator_kernels
+from streamq.nodes.estimator_kernels import (GRID_CODES, PIECE_COLUMNS, bin_window,
+                                             combine_pieces, grid_fill, grid_histogram,
+                                             grid_push, piece_stats)
 from streamq.nodes.meter import Series, write_series_csv
 
 #: seconds a live run's end waits for the worker jobs still out
@@ -90,15 +94,6 @@ def _stats(mean: float, var: float, m4: float, peak: float, clipped: int, n: int
         "clipped": int(clipped),
         "samples": int(n),
     }
-
-
-def _summary(x: np.ndarray, bins: int, span: str) -> tuple[np.ndarray, np.ndarray, dict]:
-    """``window_histogram`` and ``window_stats`` of an unweighted window, in one
-    compiled pass pair (streamq.design.kernels.window_summary)."""
-    from streamq.design.kernels import window_summary
-    centers, counts, mean, var, m4, peak, clipped = window_summary(
-        x, bins, span != "full-scale", CLIP_LEVEL)
-    return centers, counts, _stats(mean, var, m4, peak, clipped, x.shape[0])
 
 
 def window_stats(x: np.ndarray, weights: np.ndarray | None = None) -> dict[str, float]:
@@ -194,31 +189,92 @@ def js_drift(c1: np.ndarray, n1: np.ndarray, c2: np.ndarray, n2: np.ndarray, poi
                                np.asarray(n2, f), int(points)))
 
 
+def next_cut(p: int, hop: int, window: int) -> int:
+    """The first piece boundary after sample ``p``: boundaries are the
+    multiples of the hop and the window starts ``k * hop - window``, so every
+    window is a run of whole pieces (see streamq.nodes.estimator_kernels)."""
+    r = (-window) % hop
+    return min((p // hop + 1) * hop, ((p - r) // hop + 1) * hop + r)
+
+
+def window_cuts(t: int, have: int, window: int, hop: int) -> list[int]:
+    """Piece boundaries of the window ``[t - have, t)``, as offsets into it
+    (0 first, ``have`` last)."""
+    start = t - have
+    cuts = [0]
+    b = start
+    while b < t:
+        b = min(next_cut(b, hop, window), t)
+        cuts.append(b - start)
+    return cuts
+
+
+def _summaries(pieces: np.ndarray) -> np.ndarray:
+    """A window's summary (channels x PIECE_COLUMNS) from its pieces'."""
+    out = np.empty(pieces.shape[1:])
+    combine_pieces(pieces, out)
+    return out
+
+
+def _snapshots(t: int, have: int, summary: np.ndarray, histogram, params: dict, last: list
+               ) -> list[PdfSnapshot]:
+    """Snapshots of every channel from the window's summary; ``histogram(ch, lo,
+    hi, centers, counts)`` fills the channel's histogram given its extremes."""
+    bins = params["bins"]
+    out = []
+    for ch in range(summary.shape[0]):
+        n, total, m2, _, m4, lo, hi, peak, clipped = summary[ch]
+        centers, counts = np.empty(bins), np.empty(bins)
+        histogram(ch, lo, hi, centers, counts)
+        stats = _stats(total / n, m2 / n, m4 / n, peak, clipped, have)
+        out.append(_snapshot_of(t, ch, have, centers, counts, stats, params, last))
+    return out
+
+
+def _snapshot_of(t, ch, have, centers, counts, stats, params, last) -> PdfSnapshot:
+    model = fit_model(params["fit"], centers, counts) if params["fit"] != "none" else None
+    prev = last[ch]
+    drift = js_drift(prev.centers, prev.counts, centers, counts) if prev is not None else None
+    return PdfSnapshot(t, ch, t - have, centers, counts, stats, model, drift)
+
+
 def snapshot_job(t: int, win: np.ndarray, params: dict, last: list) -> list[PdfSnapshot]:
     """Snapshots of every channel for the window ``win`` ending at sample ``t``.
 
     A pure function of its arguments, so live runs can compute it in a worker
-    process. ``last`` holds each channel's previous snapshot (for the
-    hop-to-hop drift) or None.
+    process; offline runs get the same snapshots hop by hop from the node's
+    pieces and code counts. ``last`` holds each channel's previous snapshot
+    (for the hop-to-hop drift) or None. ``params`` gives ``bins``, ``span``,
+    ``half_life``, ``fit`` and, without forgetting, ``window`` and ``hop`` (the
+    piece boundaries; the whole window is one piece without them) and
+    ``grid`` (every sample on the 16-bit grid).
     """
     have = win.shape[0]
-    weights = None
     if params["half_life"]:
         age = np.arange(have - 1, -1, -1, dtype=np.float64)
         weights = np.exp2(-age / params["half_life"])
-    out = []
-    for ch in range(win.shape[1]):
-        x = win[:, ch]
-        if weights is None and have:   # one compiled two-pass summary (of the column view)
-            centers, counts, stats = _summary(x, params["bins"], params["span"])
-        else:
+        out = []
+        for ch in range(win.shape[1]):
+            x = win[:, ch]
             centers, counts = window_histogram(x, params["bins"], params["span"], weights)
-            stats = window_stats(x, weights)
-        model = fit_model(params["fit"], centers, counts) if params["fit"] != "none" else None
-        prev = last[ch]
-        drift = js_drift(prev.centers, prev.counts, centers, counts) if prev is not None else None
-        out.append(PdfSnapshot(t, ch, t - have, centers, counts, stats, model, drift))
-    return out
+            out.append(_snapshot_of(t, ch, have, centers, counts, window_stats(x, weights),
+                                    params, last))
+        return out
+    cuts = window_cuts(t, have, params.get("window", have), params.get("hop", have))
+    pieces = np.empty((len(cuts) - 1, win.shape[1], len(PIECE_COLUMNS)))
+    for k in range(len(cuts) - 1):
+        piece_stats(win[cuts[k]:cuts[k + 1]], CLIP_LEVEL, pieces[k])
+    tracked = params["span"] != "full-scale"
+    if params.get("grid"):
+        fine = np.empty((win.shape[1], GRID_CODES), dtype=np.int32)
+        grid_fill(win, fine)
+
+        def histogram(ch, lo, hi, centers, counts):
+            grid_histogram(fine[ch], lo, hi, params["bins"], tracked, centers, counts)
+    else:
+        def histogram(ch, lo, hi, centers, counts):
+            bin_window(win[:, ch], lo, hi, params["bins"], tracked, centers, counts)
+    return _snapshots(t, have, _summaries(pieces), histogram, params, last)
 
 
 def hop_job(t: int, win: np.ndarray, params: dict, last: list, requests: list) -> tuple:
@@ -275,15 +331,22 @@ class PdfEstimator(Node):
         if self.half_life is not None and self.half_life < 1:
             raise self.fail("half_life", "half_life must be at least 1 sample")
         self.params = {"bins": self.config.bins, "span": self.config.span,
-                       "half_life": self.half_life, "fit": self.config.fit}
+                       "half_life": self.half_life, "fit": self.config.fit,
+                       "window": self.W, "hop": self.H,
+                       "grid": spec.int_bits is not None and spec.int_bits <= 16}
+        self.live = bool(ctx.live and ctx.offload is not None)
+        # offline, windows are summed from pieces and code counts (see
+        # estimator_kernels); live runs summarise each window in the worker
+        self.hopwise = not (self.live or self.half_life)
+        self.grid = self.hopwise and self.params["grid"]
         # ring of the last W samples, kept twice over (rows i and W + i hold the
         # same sample), so that every window is one contiguous stretch of it
         self.buf = np.zeros((2 * self.W, self.C))
         self.written = 0
+        self._derive()
         self.pending: list[PdfSnapshot] = []  # snapshots due at the start of the next packet
         self.last: list[PdfSnapshot | None] = [None] * self.C
         self.snapshots = 0
-        self.live = bool(ctx.live and ctx.offload is not None)
         self.jobs: list = []
         self.listeners: list = []
         self.worker_errors = 0
@@ -296,6 +359,8 @@ class PdfEstimator(Node):
         self.rows = Series(WINDOW_COLUMNS + model_cols,
                            {"at_sample", "channel", "samples", "clipped"})
         self.out_dir = ctx.out_dir
+        if self.live:   # compiled before the stream starts, never on its threads
+            estimator_kernels.warm_up()
         return StreamSpec("signal", rate, self.C, spec.latency, spec.int_bits, spec.frames,
                           dict(spec.extra),
                           estimator=EstimatorLink(self.W, self.H, self.config.bins,
@@ -303,21 +368,46 @@ class PdfEstimator(Node):
                                                   self.subscribe))
 
     def _push(self, data: np.ndarray) -> None:
-        """Append to the ring of the last W samples (both copies): O(len(data)),
-        no shifting."""
-        n = data.shape[0]
-        if n == 0:
+        """Append to the ring of the last W samples (both copies) and, on the
+        16-bit grid, to the window's code counts: O(len(data)), no shifting."""
+        if data.shape[0]:
+            grid_push(self.buf, self.written, data, self.fine, self.grid)
+            self.written += data.shape[0]
+
+    def _next(self, p: int) -> int:
+        """The first boundary after sample ``p``: pieces' boundaries when windows
+        are summed from pieces, else hops."""
+        return next_cut(p, self.H, self.W) if self.hopwise else (p // self.H + 1) * self.H
+
+    def _derive(self) -> None:
+        """What the hop-by-hop summaries keep besides the ring, rebuilt from
+        it: the code counts of the last W samples and the finished pieces
+        that later windows hold (a state taken back continues exactly)."""
+        self.fine = np.zeros((self.C, GRID_CODES if self.grid else 1), dtype=np.int32)
+        self.pieces: list[tuple[int, np.ndarray]] = []   # (first sample, summary), in order
+        self.cut = 0                                      # where the open piece starts
+        if not self.hopwise or not self.written:
             return
-        self.written += n
-        W = self.W
-        if n >= W:
-            data, n = data[-W:], W
-        at = (self.written - n) % W
-        first = min(n, W - at)
-        for base in (0, W):
-            self.buf[base + at:base + at + first] = data[:first]
-            if first < n:
-                self.buf[base:base + n - first] = data[first:]
+        have = min(self.W, self.written)
+        if self.grid:
+            grid_fill(self._window(have), self.fine)
+        a = self.written - have
+        b = next_cut(a - 1, self.H, self.W) if a else 0   # first boundary at or after a
+        while True:
+            nxt = next_cut(b, self.H, self.W)
+            if nxt > self.written:
+                break
+            self._close(b, nxt)
+            b = nxt
+        self.cut = b
+
+    def _close(self, a: int, b: int) -> None:
+        """Summarise the piece [a, b), all of it still in the ring."""
+        end = self.written % self.W + self.W
+        summary = np.empty((self.C, len(PIECE_COLUMNS)))
+        piece_stats(self.buf[end - (self.written - a):end - (self.written - b)], CLIP_LEVEL,
+                    summary)
+        self.pieces.append((a, summary))
 
     def _window(self, have: int) -> np.ndarray:
         """The last ``have`` samples, oldest first: a view of the ring, valid
@@ -326,7 +416,23 @@ class PdfEstimator(Node):
         return self.buf[end - have:end]
 
     def _snapshot(self, t: int) -> list[PdfSnapshot]:
-        snaps = snapshot_job(t, self._window(min(self.W, t)), self.params, self.last)
+        have = min(self.W, t)
+        if not self.hopwise:
+            snaps = snapshot_job(t, self._window(have), self.params, self.last)
+        else:
+            while self.pieces[0][0] < t - have:     # pieces no later window holds
+                self.pieces.pop(0)
+            summary = _summaries(np.stack([p for _, p in self.pieces]))
+            bins, tracked = self.config.bins, self.config.span != "full-scale"
+            if self.grid:
+                def histogram(ch, lo, hi, centers, counts):
+                    grid_histogram(self.fine[ch], lo, hi, bins, tracked, centers, counts)
+            else:
+                win = self._window(have)
+
+                def histogram(ch, lo, hi, centers, counts):
+                    bin_window(win[:, ch], lo, hi, bins, tracked, centers, counts)
+            snaps = _snapshots(t, have, summary, histogram, self.params, self.last)
         self._took(snaps)
         return snaps
 
@@ -366,12 +472,19 @@ class PdfEstimator(Node):
         events = list(self.pending)
         self.pending = []
         events.extend(self._take_done())
-        # hop boundaries t with s < t <= s + frames, each using data up to t
-        first = (s // self.H + 1) * self.H
+        # boundaries b with s < b <= s + frames (hops among them), each using
+        # data up to b
         pos = 0
-        for t in range(first, s + frames + 1, self.H):
-            self._push(data[pos:t - s])
-            pos = t - s
+        b = self._next(s)
+        while b <= s + frames:
+            self._push(data[pos:b - s])
+            pos = b - s
+            t, b = b, self._next(b)
+            if self.hopwise:
+                self._close(self.cut, t)
+                self.cut = t
+                if t % self.H:     # a window start, not a hop
+                    continue
             if self.live:
                 # live runs: the worker computes the snapshot from a copy of the
                 # window; it travels with the first block after it is ready. A
@@ -460,6 +573,7 @@ class PdfEstimator(Node):
     def set_state(self, state):
         self.buf = state["buf"].copy()
         self.written = state["written"]
+        self._derive()
         self.pending = list(state["pending"])
         self.last = list(state["last"])
         self.snapshots = state["snapshots"]

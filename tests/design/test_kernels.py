@@ -141,31 +141,6 @@ def test_monitor_block_equals_numpy_definition(case):
     assert np.all(np.isfinite(out)) and np.abs(out).max() <= ceiling
 
 
-@pytest.mark.parametrize("span", ["tracked", "full-scale"])
-@pytest.mark.parametrize("kind", ["laplace", "constant", "clipped"])
-def test_window_summary_histogram_equals_numpy_and_moments_equal_scipy(span, kind):
-    """Counts: exactly those of the numpy histogram the estimator defines. Moments:
-    scipy.stats (population variance, plain kurtosis: 3 for a Gaussian)."""
-    from scipy import stats as sst
-    from streamq.nodes.estimator import CLIP_LEVEL, _summary, window_histogram, window_stats
-    rng = np.random.default_rng(5)
-    x = {"laplace": rng.laplace(size=24_000) * 0.1,
-         "constant": np.full(4800, 0.25),
-         "clipped": np.clip(rng.standard_normal(24_000) * 0.6, -1, 1)}[kind]
-    centers, counts, got = _summary(x, 1024, span)
-    c_ref, n_ref = window_histogram(x, 1024, span)
-    np.testing.assert_array_equal(counts, n_ref)
-    np.testing.assert_array_equal(centers, c_ref)
-    assert got["mean"] == pytest.approx(np.mean(x), rel=1e-12, abs=1e-15)
-    assert got["variance"] == pytest.approx(np.var(x), rel=1e-10, abs=1e-18)
-    if kind != "constant":
-        assert got["kurtosis"] == pytest.approx(sst.kurtosis(x, fisher=True) + 3, rel=1e-9)
-    assert got["peak"] == np.abs(x).max()
-    assert got["clipped"] == np.count_nonzero(np.abs(x) >= CLIP_LEVEL)
-    ref = window_stats(x)
-    assert got.keys() == ref.keys()
-
-
 def test_js_drift_equals_scipy_on_a_shared_grid_and_is_bounded():
     """On one grid of exactly ``points`` bins the rebinning is the identity, so the
     drift is scipy's Jensen-Shannon distance (base 2) squared; in general it lies

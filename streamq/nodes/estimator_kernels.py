@@ -293,15 +293,12 @@ def grid_histogram(fine, lo, hi, bins, tracked, centers, counts):  # pragma: no 
             edge = (lo2 + (b + 1) * width) * GRID_ZERO + GRID_ZERO
             end = cur
             if edge > cur:
-                end = int(min(edge, last + 1.0))
+                end = int(min(edge, float(last))) + 1
             while end > cur and _bin((end - 1 - GRID_ZERO) * GRID_STEP, lo2, inv, bins) > b:
                 end -= 1
             while end <= last and _bin((end - GRID_ZERO) * GRID_STEP, lo2, inv, bins) <= b:
                 end += 1
-        total = 0
-        for k in range(cur, end):
-            total += fine[k]
-        counts[b] = total
+        counts[b] = np.sum(fine[cur:end])   # (integers: exact in any order)
         cur = end
 
 

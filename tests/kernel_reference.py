@@ -365,10 +365,11 @@ def envelope_flags(points) -> list[bool]:
 
 
 def grid_code(v):
-    """16-bit code of each value: ``int(v * 32768 + 32768)``, NaN and values
-    below -1 to code 0, values from 1 up to code 65535."""
-    f = np.asarray(v, dtype=np.float64) * 32768.0 + 32768.0
-    return np.where(f >= 0.0, np.minimum(f, 65535.0), 0.0).astype(np.int64)
+    """16-bit code of each value: ``v * 32768 + 32768`` for values on the grid;
+    any value: the low 16 bits of ``v + 1.5 * 2**37`` (whose last mantissa bit
+    is worth 2**-15) with the top one flipped, so always inside the table."""
+    f = np.asarray(v, dtype=np.float64) + 1.5 * 2.0 ** 37
+    return (f.view(np.int64) & 0xFFFF) ^ 0x8000
 
 
 def code_counts(x):

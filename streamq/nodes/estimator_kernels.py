@@ -45,16 +45,19 @@ GRID_STEP = 1.0 / GRID_ZERO   # (a power of two: multiplying by it is exact)
 PIECE_COLUMNS = ("n", "sum", "m2", "m3", "m4", "min", "max", "peak", "clipped")
 
 
+#: ``v + GRID_SHIFT`` holds ``v * 32768`` in the low bits of its mantissa (the
+#: unit in its last place is 2**-15): 1.5 * 2**37
+GRID_SHIFT = 1.5 * 2.0 ** 37
+
+
 @njit(cache=True, nogil=True, inline="always")
-def _code(v):  # pragma: no cover - compiled
-    """16-bit code of ``v`` (exact for values on the grid; anything else,
-    NaN included, lands on some code inside the table, never outside)."""
-    f = v * GRID_ZERO + GRID_ZERO
-    if not f >= 0.0:
-        return 0
-    if f > GRID_CODES - 1.0:
-        return GRID_CODES - 1
-    return int(f)
+def _code(v, scratch, bits):  # pragma: no cover - compiled
+    """16-bit code of ``v``, ``v * 32768 + 32768`` for values on the grid: the
+    low 16 bits of ``v + GRID_SHIFT`` (``scratch[0]``, read as an integer
+    through ``bits``, its int64 view), top bit flipped. No branch, no
+    conversion; any other value, NaN included, also lands inside the table."""
+    scratch[0] = v + GRID_SHIFT
+    return (bits[0] & 0xFFFF) ^ 0x8000
 
 
 @njit(cache=True, nogil=True)
@@ -215,7 +218,7 @@ def grid_push(buf, written, data, fine, grid):  # pragma: no cover - compiled
     sits at row ``p % W``. Equal to: the ring's rows then hold the last
     ``min(W, written + n)`` samples of the stream, and ``fine[c]`` is
     ``bincount(code(those samples of channel c), minlength=65536)`` with
-    ``code(v) = int(v * 32768 + 32768)`` (clamped into the table).
+    ``code(v) = v * 32768 + 32768`` on the grid (see ``_code`` for other values).
 
     Parameters
     ----------
@@ -230,13 +233,15 @@ def grid_push(buf, written, data, fine, grid):  # pragma: no cover - compiled
     W = buf.shape[0] // 2
     slot = written % W
     full = written >= W
+    scratch = np.empty(1)
+    bits = scratch.view(np.int64)
     for i in range(n):
         for c in range(C):
             v = data[i, c]
             if grid:
                 if full:
-                    fine[c, _code(buf[slot, c])] -= 1
-                fine[c, _code(v)] += 1
+                    fine[c, _code(buf[slot, c], scratch, bits)] -= 1
+                fine[c, _code(v, scratch, bits)] += 1
             buf[slot, c] = v
             buf[slot + W, c] = v
         slot += 1
@@ -251,9 +256,11 @@ def grid_fill(x, fine):  # pragma: no cover - compiled
     (see :func:`grid_push` for ``code``)."""
     n, C = x.shape
     fine[:, :] = 0
+    scratch = np.empty(1)
+    bits = scratch.view(np.int64)
     for i in range(n):
         for c in range(C):
-            fine[c, _code(x[i, c])] += 1
+            fine[c, _code(x[i, c], scratch, bits)] += 1
 
 
 @njit(cache=True, nogil=True)
@@ -281,8 +288,10 @@ def grid_histogram(fine, lo, hi, bins, tracked, centers, counts):  # pragma: no 
     """
     lo2, width = span_of(lo, hi, bins, tracked)
     inv = 1.0 / width
-    first = _code(lo)
-    last = _code(hi)
+    scratch = np.empty(1)
+    bits = scratch.view(np.int64)
+    first = _code(lo, scratch, bits)
+    last = _code(hi, scratch, bits)
     cur = first
     for b in range(bins):
         centers[b] = lo2 + (b + 0.5) * width

@@ -16,7 +16,14 @@ it starts ends with :meth:`Chain.close`. Every schedule is counted in samples
 (rule 1 of the design), so the blocks may have any size and the results do not
 depend on how the host cuts them.
 
-Two ways to run, chosen by ``realtime``:
+A graph without a ``live-input`` is driven by its own sources (file-source,
+test-signal): :meth:`Chain.run` runs it to the end in the caller's thread,
+exactly as ``streamq run`` does (that command is a thin host of this class),
+with checkpoints for ``--resume`` when asked; in an audio callback
+(``realtime=True``), :meth:`Chain.process_into` with no input blocks steps
+the sources by the callback's frames (a file played to a live-output).
+
+Two ways to run a chain fed by its host, chosen by ``realtime``:
 
 ``realtime=False`` (default: a host that can wait, e.g. a loop over a file)
     Every node steps in the caller's thread, in graph order; PDF snapshots and
@@ -75,19 +82,19 @@ class Chain:
         After :meth:`close`: what ``report.json`` holds.
     """
 
-    def __init__(self, graph, out_dir: str | Path | None = None, *, realtime: bool = False):
+    def __init__(self, graph, out_dir: str | Path | None = None, *, realtime: bool = False,
+                 overrides=()):
         from streamq.nodes.live import LiveInput, LiveOutput
         self.graph = graph
         self.out_dir = None if out_dir is None else Path(out_dir)
         self.realtime = bool(realtime)
+        self.overrides = tuple(overrides)      # (what a checkpoint's fingerprint holds)
         self.inputs = tuple(nid for nid in graph.order
                             if isinstance(graph.nodes[nid], LiveInput))
         self.outputs = tuple(nid for nid in graph.order
                              if isinstance(graph.nodes[nid], LiveOutput))
-        if not self.inputs:
-            raise StreamqError(f"{graph.source or '<graph>'}: a chain is fed through a "
-                               f"live-input node; this graph has none")
         self.state = "new"           # "new" -> "open" -> "closed"
+        self.wall_seconds = 0.0      # (closed) wall time from open to close
         self.report: dict[str, Any] | None = None
         self.position = 0            # frames processed
         self.built = None
@@ -95,6 +102,8 @@ class Chain:
         self._in_nodes: list = []    # (open) the live-input and live-output nodes
         self._out_nodes: list = []
         self._workers: list = []
+        self._background = None      # realtime: the thread pool meters sum their frames on
+        self._resumed = False        # opened from a checkpoint
         self._t0 = 0.0
 
     # -- building ------------------------------------------------------------------
@@ -105,7 +114,8 @@ class Chain:
         (``"enc.bits=6"``). Raises :class:`StreamqError` with the one-line
         messages of ``streamq check``."""
         from streamq.engine.graph import load_graph
-        return cls(load_graph(path, list(overrides), precheck=True), out_dir, realtime=realtime)
+        return cls(load_graph(path, list(overrides), precheck=True), out_dir, realtime=realtime,
+                   overrides=overrides)
 
     @classmethod
     def from_toml(cls, text: str, out_dir: str | Path | None = None, overrides=(), *,
@@ -115,7 +125,7 @@ class Chain:
         from streamq.engine.graph import parse_graph
         graph = parse_graph(text, None if source is None else Path(source), list(overrides),
                             precheck=True)
-        return cls(graph, out_dir, realtime=realtime)
+        return cls(graph, out_dir, realtime=realtime, overrides=overrides)
 
     @property
     def sample_rate(self) -> int:
@@ -141,12 +151,46 @@ class Chain:
             return 0
         return int(self.built.specs[self.graph.nodes[self.outputs[0]].config.input].latency)
 
+    @property
+    def length(self) -> int | None:
+        """Frames the graph's own sources hold (open chains without a
+        live-input; None for an endless source or a chain its host feeds)."""
+        self._require_open("length")
+        return None if self.inputs else self.built.length
+
+    @property
+    def offline(self) -> bool:
+        """No live node at all and no ``realtime``: the chain builds and runs as
+        ``streamq run`` runs a file graph (designs in this process)."""
+        return not (self.inputs or self.outputs or self.realtime or
+                    any(n.live_only for n in self.graph.nodes.values()))
+
     # -- life cycle ----------------------------------------------------------------
-    def open(self) -> "Chain":
-        """Open every node (and the worker process, when the graph designs)."""
+    def open(self, *, resume: bool = False) -> "Chain":
+        """Open every node (and the worker process, when the graph designs).
+
+        Parameters
+        ----------
+        resume : bool
+            Continue an interrupted :meth:`run` from the last checkpoint in
+            ``out_dir`` (offline chains only): the checkpoint must come from
+            the same graph, overrides, inputs and streamq version, or a
+            one-line StreamqError says why not.
+        """
         if self.state != "new":
             raise StreamqError(f"Chain.open: the chain is {self.state}; a chain opens once")
+        if resume:
+            return self._open_resumed()
         from streamq.engine.scheduler import build
+        if self.offline:
+            try:
+                self.built = build(self.graph, self.out_dir)
+            except BaseException:
+                self.state = "closed"
+                raise
+            self.state = "open"
+            self._t0 = time.perf_counter()
+            return self
         offload = background = None
         if any(n.kind == "pdf-estimator" for n in self.graph.nodes.values()):
             from streamq.live.runner import make_workers
@@ -161,6 +205,7 @@ class Chain:
             self._workers = [designer, executor]
             if self.realtime:
                 offload, background = designer.submit, executor.submit
+                self._background = executor
             else:
                 offload = _waiting(designer.submit)
         elif self.realtime:
@@ -168,6 +213,7 @@ class Chain:
                 max_workers=1, thread_name_prefix="streamq-meter")
             self._workers = [executor]
             background = executor.submit
+            self._background = executor
         try:
             self.built = build(self.graph, self.out_dir, live=True, offload=offload,
                                background=background)
@@ -184,6 +230,89 @@ class Chain:
         self.state = "open"
         self._t0 = time.perf_counter()
         return self
+
+    def _open_resumed(self) -> "Chain":
+        """:meth:`open` from the checkpoint in ``out_dir``."""
+        from streamq.engine import checkpoint
+        from streamq.engine.scheduler import build
+        if not self.offline or self.out_dir is None:
+            self.state = "closed"
+            raise StreamqError("Chain.open(resume=True): only a chain run by its own file "
+                               "sources, with an out_dir, resumes")
+        try:
+            ck = checkpoint.load(self.out_dir, checkpoint.fingerprint(self.graph, self.overrides))
+            moved = checkpoint.set_aside(ck)
+            self.built = build(self.graph, self.out_dir)
+        except BaseException:
+            self.state = "closed"
+            raise
+        try:
+            checkpoint.restore(self.built, ck, moved)
+        except BaseException:
+            self.state = "closed"
+            for nid in self.built.graph.order:
+                try:
+                    self.built.graph.nodes[nid].close(False)
+                except Exception:
+                    pass
+            raise
+        self.position = ck.position
+        self._resumed = True
+        self.state = "open"
+        self._t0 = time.perf_counter()
+        return self
+
+    def run(self, *, block: int | None = None, progress=None, handle_signals: bool = False,
+            checkpoint_every: float | None = None) -> dict[str, Any]:
+        """Run a chain without a live-input from its sources to their end.
+
+        The nodes step in this thread on blocks of ``block`` frames (any
+        value gives the same outputs); the chain is closed at the end.
+
+        Parameters
+        ----------
+        block : int, optional
+            Frames per step (default 65,536).
+        progress : callable, optional
+            Called as ``progress(done_frames, total_frames)`` after each step.
+        handle_signals : bool
+            Turn SIGINT/SIGTERM into a clean stop (the report says
+            ``"complete": false``; outputs stay valid). Main thread only.
+        checkpoint_every : float, optional
+            Write a checkpoint to ``out_dir`` every so many seconds of wall
+            time (what :meth:`open` with ``resume=True`` continues from); it is
+            removed once the run completes.
+
+        Returns
+        -------
+        dict
+            The report (also in :attr:`report`; ``report.json`` when there
+            is an ``out_dir``).
+        """
+        from streamq.engine import checkpoint
+        from streamq.engine.scheduler import run_offline
+        self._require_open("run")
+        if self.inputs:
+            raise StreamqError(f"Chain.run: this chain is fed through its live-input(s) "
+                               f"({', '.join(self.inputs)}); feed it with process()")
+        if self.built.length is None:
+            self._close(complete=False)
+            raise StreamqError("this graph has an endless source; run it live")
+        save = None
+        if checkpoint_every is not None and self.out_dir is not None:
+            fp = checkpoint.fingerprint(self.graph, self.overrides)
+            built, out = self.built, self.out_dir
+            save = lambda pos: checkpoint.save(out, fp, pos, built)  # noqa: E731
+        self.state = "closed"          # run_offline closes every node, whatever happens
+        result = run_offline(self.built, block=block, progress=progress,
+                             handle_signals=handle_signals, start=self.position,
+                             checkpoint=save, checkpoint_every=checkpoint_every or 0.0)
+        self.position = result.samples
+        self.wall_seconds = time.perf_counter() - self._t0
+        self.report = result.report
+        if result.complete and self.out_dir is not None and (save is not None or self._resumed):
+            checkpoint.clear(self.out_dir)
+        return self.report
 
     def process(self, block):
         """Push one block through the chain.
@@ -211,6 +340,10 @@ class Chain:
             node closes the chain (its report says ``"complete": false``).
         """
         self._require_open("process")
+        if not self.inputs:
+            raise StreamqError("Chain.process: this graph has no live-input; its own sources "
+                               "drive it: use run(), or process_into(frames, ()) in an audio "
+                               "callback")
         data = self._take(block)
         frames = next(iter(data.values())).shape[0]
         try:
@@ -233,7 +366,7 @@ class Chain:
             return None
         return outs if len(outs) > 1 else next(iter(outs.values()))
 
-    def process_into(self, frames: int, blocks, outs=()) -> None:
+    def process_into(self, frames: int, blocks, outs=(), *, check_finite: bool = True) -> None:
         """Push one block through the chain, from and into buffers the host owns.
 
         For audio callbacks that cannot afford :meth:`process`'s checks and new
@@ -248,12 +381,19 @@ class Chain:
         blocks : sequence of numpy.ndarray
             One array per live-input, in :attr:`inputs` order, shaped (at
             least ``frames``, channels), float32 or float64; only the first
-            ``frames`` rows are read, and the chain keeps a copy.
+            ``frames`` rows are read, and the chain keeps a copy. Empty for a
+            chain its own sources drive (they step by ``frames``; the host
+            stops at :attr:`length`).
         outs : sequence
             One destination per live-output, in :attr:`outputs` order: an
             array shaped (at least ``frames``, channels), or a sequence of one
             1-D array per channel (the buffers an audio server hands out); the
             first ``frames`` samples of each are written (cast to its dtype).
+        check_finite : bool
+            Apply each live-input's ``nonfinite`` policy (the default). False:
+            the samples go in as they are (``streamq run`` on a PortAudio
+            device: a NaN from a broken driver then fails that hop's design
+            in the worker, which is reported, and the audio goes on).
 
         Raises
         ------
@@ -266,7 +406,7 @@ class Chain:
         nodes = self._in_nodes
         for i, x in enumerate(blocks):
             x = x[:frames]
-            if not np.isfinite(np.add.reduce(x, axis=None, dtype=np.float64)):
+            if check_finite and not np.isfinite(np.add.reduce(x, axis=None, dtype=np.float64)):
                 x = self._finite(self.inputs[i], x, "Chain.process_into")
             nodes[i].feed(x)
         live = self._live
@@ -286,7 +426,7 @@ class Chain:
                     buf[:frames] = y[:, c]
 
     def close(self, *, early: bool = False, failed: bool = False,
-              extra: dict[str, Any] | None = None) -> dict[str, Any]:
+              extra: dict[str, Any] | None = None, report_file: bool = True) -> dict[str, Any]:
         """Finish the stream, close every node, stop every thread and process the
         chain started; returns (and keeps in :attr:`report`) the report.
 
@@ -303,13 +443,18 @@ class Chain:
             report says ``"complete": false``.
         extra : dict, optional
             More top-level entries for the report (a host's own figures).
+        report_file : bool
+            Write ``report.json`` into ``out_dir`` (False: a host whose
+            stream never started, e.g. a device that would not open, leaves
+            no report of a run that did not happen).
         """
         if self.state == "new":
             self.state = "closed"
             return self.report or {}
         if self.state == "closed":
             return self.report or {}
-        return self._close(complete=not failed, early=early, extra=extra)
+        return self._close(complete=not failed, early=early, extra=extra,
+                           report_file=report_file)
 
     def __enter__(self) -> "Chain":
         return self.open() if self.state == "new" else self
@@ -387,7 +532,7 @@ class Chain:
         _step_all(self.built, frames)
 
     def _close(self, complete: bool, early: bool = False,
-               extra: dict[str, Any] | None = None) -> dict[str, Any]:
+               extra: dict[str, Any] | None = None, report_file: bool = True) -> dict[str, Any]:
         from streamq.engine.scheduler import make_report, write_report
         self.state = "closed"
         failure: BaseException | None = None
@@ -397,6 +542,9 @@ class Chain:
                 if self._live.error is not None and complete:
                     failure = self._live.error
                     complete = False
+            if self._background is not None:
+                # what the follower handed the meters' thread is summed before they finish
+                self._background.shutdown(wait=True)
             if complete:
                 for nid in self.built.graph.order:
                     self.built.graph.nodes[nid].finish()
@@ -409,10 +557,10 @@ class Chain:
             except BaseException as exc:
                 failure = failure or exc
         self._stop_workers()
-        seconds = time.perf_counter() - self._t0
+        seconds = self.wall_seconds = time.perf_counter() - self._t0
         self.report = make_report(self.built, complete=complete, samples=self.position,
                                   seconds=seconds, extra=extra)
-        if self.out_dir is not None:
+        if self.out_dir is not None and report_file:
             write_report(self.out_dir, self.report)
         if failure is not None:
             raise failure

@@ -8,9 +8,10 @@ import sys
 import time
 from pathlib import Path
 
-from streamq.engine.graph import Graph, load_graph
+from streamq.chain import Chain
 from streamq.engine import checkpoint
-from streamq.engine.scheduler import RunResult, build, run_offline
+from streamq.engine.graph import Graph, load_graph
+from streamq.engine.scheduler import RunResult
 from streamq.errors import StreamqError
 
 EXIT_OK, EXIT_INTERRUPTED = 0, 130
@@ -106,12 +107,12 @@ def release_memory() -> None:
         pass
 
 
-def write_report_pages(result: RunResult) -> list[Path]:
+def write_report_pages(out_dir: Path, report: dict) -> list[Path]:
     """Plots and report.html after a run (complete or not). A failure here only
     warns: report.json is already on disk and stays as it is."""
     try:
         from streamq.report import write_report_files
-        return write_report_files(result.out_dir, result.report)
+        return write_report_files(out_dir, report)
     except Exception as exc:
         msg = " ".join(str(exc).split()) or type(exc).__name__
         print(f"streamq: warning: plots and report.html not written ({msg[:200]})", file=sys.stderr)
@@ -164,40 +165,24 @@ def _run_graph_file(args) -> int:
     if live:
         from streamq.live.runner import run_live
         return run_live(graph, out, args)
-    fp = checkpoint.fingerprint(graph, args.overrides)
-    start, moved, ck = 0, {}, None
-    if resume:
-        ck = checkpoint.load(out, fp)
-        start = ck.position
-        moved = checkpoint.set_aside(ck)
-    built = build(graph, out)
-    if ck is not None:
-        try:
-            checkpoint.restore(built, ck, moved)
-        except BaseException:
-            for nid in built.graph.order:
-                try:
-                    built.graph.nodes[nid].close(False)
-                except Exception:
-                    pass
-            raise
-    bar = Progress(built.length, built.ctx.sample_rate, getattr(args, "quiet", False), graph.name)
+    # an offline run is a chain its file sources drive, run to the end in this thread
+    chain = Chain(graph, out, overrides=args.overrides)
+    chain.open(resume=resume)
+    bar = Progress(chain.length, chain.sample_rate, getattr(args, "quiet", False), graph.name)
     try:
-        result = run_offline(built, block=args.block, progress=bar, start=start,
-                             checkpoint=lambda pos, b=built: checkpoint.save(out, fp, pos, b),
-                             checkpoint_every=checkpoint.every())
+        report = chain.run(block=args.block, progress=bar, handle_signals=True,
+                           checkpoint_every=checkpoint.every())
     finally:
         bar.close()
-    if result.complete:
-        checkpoint.clear(out)
+    result = RunResult(report["complete"], report["samples"], chain.wall_seconds, report, out)
     # the nodes' buffers and series are in the files and the report now: let them
     # go before plotting, which is when an hours-long run's memory peaks
-    del built
+    del chain
     release_memory()
     if not getattr(args, "quiet", False) or not result.complete:
         for line in summary_lines(result):
             print(line)
-    written = write_report_pages(result)
+    written = write_report_pages(out, report)
     if written and not getattr(args, "quiet", False):
         print(f"  report: {written[-1]}" if written[-1].suffix == ".html" else
               f"  plots: {len(written)} files")

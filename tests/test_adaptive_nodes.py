@@ -23,7 +23,7 @@ RATE = 8000
 @pytest.fixture(autouse=True)
 def _no_plots(monkeypatch):
     import streamq.runner
-    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda result: [])
+    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda out_dir, report: [])
 
 
 # -- windows without spread: silence and DC ------------------------------------------

@@ -229,9 +229,47 @@ def test_validation_errors_match_streamq_check(tmp_path):
     assert chain.graph.nodes["enc"].config.bits == 3 and chain.inputs == ("mic",)
 
 
-def test_graph_without_live_input_is_refused():
-    with pytest.raises(StreamqError, match="live-input"):
-        streamq.Chain.load(REPO / "graphs" / "demo.toml")
+def test_graph_driven_by_its_sources_runs_as_streamq_run(tmp_path):
+    """A graph without a live-input: Chain.run is what `streamq run` hosts
+    (the command's report equals the chain's, timing aside); process() on it
+    is a one-line error naming the way to run it."""
+    wav = tmp_path / "in.wav"
+    sf.write(wav, material(2.0), RATE, subtype="DOUBLE")
+    text = f'[graph]\nname = "embedded"\n[nodes.mic]\nuse = "file-source"\npath = "{wav}"\n' + CHAIN
+    want = offline_equivalent(wav, tmp_path / "cli")
+    chain = streamq.Chain.from_toml(text, tmp_path / "chain", source=tmp_path / "g.toml")
+    with chain:
+        assert chain.inputs == () and chain.length == 2 * RATE
+        with pytest.raises(StreamqError, match="no live-input; its own sources drive it"):
+            chain.process(np.zeros((8, 2)))
+        rep = chain.run(block=1001)
+    assert chain.state == "closed" and rep["complete"] and rep["samples"] == 2 * RATE
+    for nid in ("noise", "gain_noise"):
+        assert figures(rep["meters"][nid]) == figures(want["meters"][nid])
+    assert json.loads((tmp_path / "chain" / "report.json").read_text())["samples"] == 2 * RATE
+    a, _ = sf.read(tmp_path / "chain" / "decoded.wav")
+    b, _ = sf.read(tmp_path / "cli" / "decoded.wav")
+    np.testing.assert_array_equal(a, b)
+
+
+def test_realtime_chain_driven_by_a_file_plays_it(tmp_path):
+    """A file played to a live-output in an audio callback: process_into with
+    no input blocks steps the file by the callback's frames; the host stops at
+    Chain.length."""
+    wav = tmp_path / "in.wav"
+    x = material(0.5)
+    sf.write(wav, x, RATE, subtype="DOUBLE")
+    text = (f'[graph]\nname = "play"\nsample_rate = {RATE}\n[nodes.mic]\nuse = "file-source"\n'
+            f'path = "{wav}"\n[nodes.mon]\nuse = "live-output"\ninput = "mic"\n')
+    got = []
+    with streamq.Chain.from_toml(text, realtime=True) as chain:
+        buf = np.zeros((128, 2), dtype=np.float32)
+        while chain.position < chain.length:
+            n = min(128, chain.length - chain.position)
+            chain.process_into(n, (), (buf,))
+            got.append(buf[:n].copy())
+    assert chain.report["complete"] and chain.report["samples"] == len(x)
+    assert np.concatenate(got).shape == x.shape
 
 
 def test_several_inputs_and_outputs_are_keyed_by_id():

@@ -29,7 +29,7 @@ from typing import Any
 
 from streamq.engine.audiofile import replacing
 from streamq.engine.graph import Graph, validate_graph
-from streamq.engine.scheduler import Interrupted, build, run_offline
+from streamq.engine.scheduler import Interrupted
 from streamq.errors import StreamqError
 
 MARKER = "batch.json"
@@ -238,20 +238,20 @@ def process_file(job: dict[str, Any]) -> dict[str, Any]:
         return out
     try:
         graph = bind_graph(job["graph_text"], job["graph_file"], job["overrides"], job["node"], inp)
-        built = build(graph, folder)
-        result = run_offline(built, progress=_StopCheck(stop_file), handle_signals=False)
-        out["samples"] = result.samples
-        out["audio_seconds"] = float(result.report.get("audio_seconds", 0.0))
-        if result.complete:
+        from streamq.chain import Chain
+        report = Chain(graph, folder).open().run(progress=_StopCheck(stop_file))
+        out["samples"] = report["samples"]
+        out["audio_seconds"] = float(report.get("audio_seconds", 0.0))
+        if report["complete"]:
             if input_stamp(inp) != stamp:
                 out.update(status="failed", error=f"{inp}: the file changed during the run")
             else:
                 out["status"] = "done"
                 if job.get("pages"):
-                    out["page_warnings"] = write_pages(folder, result.report)
+                    out["page_warnings"] = write_pages(folder, report)
         else:
             out["status"] = "interrupted"
-            out["error"] = f"stopped at sample {result.samples}"
+            out["error"] = f"stopped at sample {report['samples']}"
     except Exception as exc:  # one bad file must not stop the batch: record it
         out.update(status="failed", error=one_line(exc))
     out["seconds"] = time.perf_counter() - t0

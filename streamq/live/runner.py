@@ -1,10 +1,11 @@
 """Running a graph on a live device.
 
 One PortAudio stream (duplex when the graph has both a live input and a
-live output) drives the graph: its callback feeds the input node, steps the
-nodes the monitor output needs on ``block`` frames and copies the monitor
-block out; the other nodes (estimators, meters, sinks) follow on a thread in
-batches of a few blocks (streamq.live.chain). The callback's step is
+live output) drives a :class:`streamq.Chain` opened with ``realtime=True``:
+its callback hands the device's buffers to :meth:`Chain.process_into`, which
+steps the nodes the monitor output needs on ``block`` frames and writes the
+monitor block out; the other nodes (estimators, meters, sinks) follow on a
+thread in batches of a few blocks (streamq.live.chain). The callback's step is
 O(block) vectorised work (DESIGN.md rule 4): PDF snapshots and codebook
 designs go to a worker process through ``ctx.offload`` and come back as
 reference swaps, each applied at its due sample (or at the next block if it
@@ -28,8 +29,6 @@ from pathlib import Path
 import numpy as np
 
 from streamq.engine.graph import Graph
-from streamq.engine.scheduler import build, make_report, write_report
-from streamq.live.chain import LiveChain
 from streamq.errors import StreamqError
 
 STATUS_FLAGS = ("input_underflow", "input_overflow", "output_underflow", "output_overflow",
@@ -160,20 +159,20 @@ def realtime_conditions():
 class LiveRun:
     """The state shared between the audio callback and the main thread."""
 
-    def __init__(self, built, block: int, stop_after: int | None):
-        from streamq.nodes.live import LiveInput, LiveOutput
-        self.built = built
+    def __init__(self, chain, block: int, stop_after: int | None):
+        self.chain = chain
+        self.built = chain.built
         self.block = block
         self.stop_after = stop_after
-        nodes = built.graph.nodes
-        self.inp = [n for n in nodes.values() if isinstance(n, LiveInput)]
-        self.out = [n for n in nodes.values() if isinstance(n, LiveOutput)]
+        nodes = chain.graph.nodes
+        self.inp = [nodes[nid] for nid in chain.inputs]
+        self.out = [nodes[nid] for nid in chain.outputs]
         if len(self.inp) > 1 or len(self.out) > 1:
             raise StreamqError("a live graph has at most one live-input and one live-output "
                                "(one duplex stream)")
-        if not self.inp and built.length is None:
+        self.length = chain.length
+        if not self.inp and self.length is None:
             raise StreamqError("a live graph needs a live-input or a finite source")
-        self.length = built.length
         self.pos = 0
         self.times = [0.0] * TIMES    # (a list: cheaper to store into from the callback)
         self.calls = 0
@@ -182,9 +181,8 @@ class LiveRun:
         self.sd = None
         self.error: BaseException | None = None
         self.done = threading.Event()
-        # the callback steps only what the output needs; the rest follows on a thread
-        self.chain = LiveChain(built)
-        self.chain.on_error = self._follower_failed
+        if chain._live is not None:
+            chain._live.on_error = self._follower_failed
 
     def _follower_failed(self, exc: BaseException) -> None:
         if self.error is None:
@@ -215,19 +213,12 @@ class LiveRun:
             if self.length is not None:
                 n = min(frames, self.length - self.pos)
             if n > 0:
-                if self.inp:
-                    self.inp[0].feed(indata if n == frames else indata[:n])
-                if outdata is not None and n == frames:
-                    # the monitor writes straight into the device's buffer
-                    self.out[0].device_block = outdata
-                    self.chain.step(n)
-                else:
-                    if self.out:
-                        self.out[0].device_block = None
-                    self.chain.step(n)
-                    if outdata is not None:
-                        outdata[:n] = self.out[0].block
-                        outdata[n:] = 0
+                # the device's samples go in as they come (see check_finite)
+                self.chain.process_into(n, () if indata is None else (indata,),
+                                        () if outdata is None else (outdata,),
+                                        check_finite=False)
+                if outdata is not None and n < frames:
+                    outdata[n:] = 0
                 self.pos += n
             elif outdata is not None:
                 outdata[:] = 0
@@ -300,63 +291,40 @@ def _gather(run: LiveRun) -> dict:
 
 
 def run_live(graph: Graph, out_dir: Path, args) -> int:
-    """`streamq run` for graphs with live nodes."""
+    """`streamq run` for graphs with live nodes: a PortAudio stream hosting a
+    :class:`streamq.Chain` opened with ``realtime=True``."""
     if graph.header.host == "jack":
         from streamq.live.jack_host import run_jack
         return run_jack(graph, out_dir, args)
+    from streamq.chain import Chain
     from streamq.live.devices import import_sounddevice
     sd = import_sounddevice()
     block = int(getattr(args, "block", None) or graph.header.block)
     seconds = getattr(args, "seconds", None)
-    # designs and PDF snapshots: a worker process (no contention for the interpreter
-    # lock with the audio callback); short node-bound jobs: one worker thread
-    designer, executor = make_workers()
+    # designs and PDF snapshots go to a worker process (no contention for the
+    # interpreter lock with the audio callback), meters' sums to a worker thread
+    chain = Chain(graph, out_dir, realtime=True).open()
+    rate = chain.sample_rate
     try:
-        built = build(graph, out_dir, live=True, offload=designer.submit,
-                      background=executor.submit)
-    except BaseException:
-        executor.shutdown(wait=False)
-        designer.shutdown(wait=False, cancel_futures=True)
-        raise
-    complete = False
-    closing_errors: list[StreamqError] = []   # (a meter's CSV on a full disk, ...)
-    try:
-        rate = built.ctx.sample_rate
-        run = LiveRun(built, block, None if seconds is None else int(round(seconds * rate)))
+        run = LiveRun(chain, block, None if seconds is None else int(round(seconds * rate)))
         run.sd = sd
-        kwargs = dict(samplerate=rate, blocksize=block, dtype="float32", callback=run.callback)
-        try:
-            if run.inp and run.out:
-                i = _device(sd, run.inp[0], "input", run.inp[0].spec.channels)
-                o = _device(sd, run.out[0], "output", run.out[0].C)
-                stream = sd.Stream(device=(i, o), channels=(run.inp[0].spec.channels,
-                                                            run.out[0].C), **kwargs)
-            elif run.inp:
-                i = _device(sd, run.inp[0], "input", run.inp[0].spec.channels)
-                stream = sd.InputStream(device=i, channels=run.inp[0].spec.channels, **kwargs)
-            else:
-                if not run.out:
-                    raise StreamqError("a live run needs a live-input or a live-output node")
-                o = _device(sd, run.out[0], "output", run.out[0].C)
-                stream = sd.OutputStream(device=o, channels=run.out[0].C, **kwargs)
-        except sd.PortAudioError as exc:
-            raise _open_failure(exc, sd, run, graph, rate, block) from None
-        meter = _terminal_meter(args)
-        interrupted = False
-        stalled = False
-        old_term = None
+        stream = _open_stream(sd, run, graph, rate, block)
+    except BaseException:
+        chain.close(failed=True, report_file=False)    # no audio ran: nothing to report
+        raise
+    meter = _terminal_meter(args)
+    interrupted = stalled = False
+    old_term = None
 
-        def on_term(signum, frame):
-            raise KeyboardInterrupt
+    def on_term(signum, frame):
+        raise KeyboardInterrupt
 
-        try:
-            old_term = signal.signal(signal.SIGTERM, on_term)
-        except ValueError:  # not the main thread
-            pass
-        conditions = realtime_conditions()
-        conditions.__enter__()      # left in the `finally` below
-        try:
-            run.chain.start()
+    try:
+        old_term = signal.signal(signal.SIGTERM, on_term)
+    except ValueError:  # not the main thread
+        pass
+    try:
+        with realtime_conditions():
             stream.start()
             try:
                 seen, since = run.calls, time.monotonic()
@@ -380,58 +348,69 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 # (with a dead server PortAudio would wait for a callback forever)
                 stream.stop()
                 stream.close()
-        finally:
-            run.chain.stop()    # step what the callback queued last
-            conditions.__exit__(None, None, None)
-            if old_term is not None:
-                signal.signal(signal.SIGTERM, old_term)
-            if meter:
-                meter.close()
-        if run.error is not None:
-            err = run.error
-            if isinstance(err, StreamqError):
-                raise err
-            raise StreamqError(f"live run stopped at sample {run.pos}: "
-                               f"{type(err).__name__}: {err}") from None
-        if stalled:
-            print(f"streamq: the audio stopped after {run.pos / rate:.2f} s (did the audio "
-                  f"server or device go away?); the outputs so far are kept", file=sys.stderr)
-            interrupted = True
-        # let the worker finish what the callback handed it (meters sum their frames
-        # there in live runs), then flush the nodes
-        executor.shutdown(wait=True)
-        for nid in built.graph.order:
-            built.graph.nodes[nid].finish()
-        complete = not interrupted
-        designer.shutdown(wait=True, cancel_futures=True)
     finally:
-        executor.shutdown(wait=False, cancel_futures=True)
-        designer.shutdown(wait=False, cancel_futures=True)
-        for nid in built.graph.order:
-            try:
-                built.graph.nodes[nid].close(complete)
-            except StreamqError as exc:   # said after the report, which still gets written
-                closing_errors.append(exc)
+        if old_term is not None:
+            signal.signal(signal.SIGTERM, old_term)
+        if meter:
+            meter.close()
+    failed = run.error is not None
+    if stalled:
+        interrupted = True
     live = {"block": block, "block_ms": 1000.0 * block / rate, "xruns": run.xruns,
             "status": run.status, "callback_ms": run.timing(), "callbacks": run.calls,
-            "worker_errors": worker_errors(built)}
+            "worker_errors": worker_errors(chain.built)}
     # as offline: a run stopped by Ctrl-C/SIGTERM says "complete": false (its outputs are
     # still closed and valid); one that reached --seconds or its source's end is complete
-    report = make_report(built, complete=not interrupted, samples=run.pos,
-                         seconds=run.pos / rate, extra={"live": live})
-    report["stopped_by"] = ("stalled" if stalled else "interrupt" if interrupted
-                            else "seconds" if seconds else "end")
-    write_report(out_dir, report)
+    stopped_by = ("failure" if failed else "stalled" if stalled else "interrupt" if interrupted
+                  else "seconds" if seconds else "end")
+    closing_error: StreamqError | None = None   # (a meter's CSV on a full disk, ...)
+    try:
+        report = chain.close(early=interrupted, failed=failed,
+                             extra={"live": live, "stopped_by": stopped_by})
+    except StreamqError as exc:      # said after the report, which is written all the same
+        report, closing_error = chain.report, exc
+    except Exception as exc:         # a follower node failed at the end
+        report = chain.report
+        run.error = run.error or exc
+        failed = True
+    if failed:
+        err = run.error
+        if isinstance(err, StreamqError):
+            raise err
+        raise StreamqError(f"live run stopped at sample {run.pos}: "
+                           f"{type(err).__name__}: {err}") from None
     _after(out_dir, report, args)
     live_summary(graph.name, out_dir, report)
-    for exc in closing_errors:
-        print(f"streamq: {exc}", file=sys.stderr)
+    if closing_error is not None:
+        print(f"streamq: {closing_error}", file=sys.stderr)
     if stalled:
+        print(f"streamq: the audio stopped after {run.pos / rate:.2f} s (did the audio "
+              f"server or device go away?); the outputs so far are kept", file=sys.stderr)
         # PortAudio cannot be shut down without its server; everything is written
         sys.stdout.flush()
         sys.stderr.flush()
         os._exit(2)
-    return 2 if closing_errors else 130 if interrupted else 0
+    return 2 if closing_error else 130 if interrupted else 0
+
+
+def _open_stream(sd, run: LiveRun, graph: Graph, rate: int, block: int):
+    """The PortAudio stream for a live run: duplex, input or output."""
+    kwargs = dict(samplerate=rate, blocksize=block, dtype="float32", callback=run.callback)
+    try:
+        if run.inp and run.out:
+            i = _device(sd, run.inp[0], "input", run.inp[0].spec.channels)
+            o = _device(sd, run.out[0], "output", run.out[0].C)
+            return sd.Stream(device=(i, o), channels=(run.inp[0].spec.channels, run.out[0].C),
+                             **kwargs)
+        if run.inp:
+            i = _device(sd, run.inp[0], "input", run.inp[0].spec.channels)
+            return sd.InputStream(device=i, channels=run.inp[0].spec.channels, **kwargs)
+        if not run.out:
+            raise StreamqError("a live run needs a live-input or a live-output node")
+        o = _device(sd, run.out[0], "output", run.out[0].C)
+        return sd.OutputStream(device=o, channels=run.out[0].C, **kwargs)
+    except sd.PortAudioError as exc:
+        raise _open_failure(exc, sd, run, graph, rate, block) from None
 
 
 def worker_errors(built) -> int:

@@ -24,8 +24,9 @@ class LiveInputConfig(NodeConfig):
                                                        "default: the system's default input")
     channels: int = Field(1, ge=1, le=64, description="input channels")
     nonfinite: Literal["refuse", "zero"] = Field(
-        "refuse", description="NaN or infinite samples from the host (streamq.Chain, the audio "
-                              "server clients): refuse the block, or replace them with 0")
+        "refuse", description="NaN or infinite samples from the host (streamq.Chain, the JACK "
+                              "and GStreamer hosts): refuse the block, or replace them with "
+                              "0 (a PortAudio device's samples go in as they come)")
     connect: list[str] = Field(
         [], description="host = \"jack\": ports to take each channel from when the run starts, "
                         "in channel order (e.g. [\"system:capture_1\"]); our own input ports are "
@@ -133,7 +134,6 @@ class LiveOutput(Node):
         self.peak_out = 0.0
         self.block: np.ndarray | None = None
         self.no_ref = np.empty((0, self.C))
-        self.device_block: np.ndarray | None = None
         from streamq.design.kernels import monitor_block, warm_up
         warm_up()          # compiled now, not in the audio callback
         self.kernel = monitor_block
@@ -157,11 +157,7 @@ class LiveOutput(Node):
             else:
                 g1 = g0 + (most if to > g0 else -most)
                 self.gain = 10.0 ** (g1 / 20.0)
-        # the live runner may hand over the device's own buffer: written in place
-        y = self.device_block
-        self.device_block = None      # valid for this callback only
-        if y is None or y.shape[0] != frames:
-            y = np.empty((frames, self.C))
+        y = np.empty((frames, self.C))     # (the host copies it where it goes)
         # limiter: instant attack per block, release at `release`, hard ceiling last
         new, peak, top = self.kernel(x, ref, g0, g1, self.limit_gain, self.release ** frames,
                                      self.ceiling, y)

@@ -239,4 +239,6 @@ class PlotWorkers:
             if not wait:         # a failed run: nothing to draw, stop the helpers now
                 for process in list((getattr(pool, "_processes", None) or {}).values()):
                     process.terminate()
-            pool.shutdown(wait=wait, cancel_futures=True)
+            # (waited for either way: terminated helpers end at once, and a pool left
+            # to itself has its wake-up pipe closed under it at interpreter exit)
+            pool.shutdown(wait=True, cancel_futures=True)

@@ -307,7 +307,7 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str | None = None
     sorted by SNR (best first) of per-method figures and encoder settings.
     """
     from streamq.engine.graph import parse_graph
-    from streamq.engine.scheduler import build, run_offline
+    from streamq.chain import Chain
 
     audio = Path(audio).expanduser().resolve()
     if not 1 <= int(bits) <= 16:
@@ -350,12 +350,11 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str | None = None
             prepare_out_dir(out)
         (out / "graph.toml").write_text(text, encoding="utf-8")
         graph = parse_graph(text, out / "graph.toml")
-        built = build(graph, out)
-        result = run_offline(built, progress=progress, handle_signals=handle_signals)
-        report = result.report
+        chain = Chain(graph, out).open()
+        report = chain.run(progress=progress, handle_signals=handle_signals)
         if out_dir is not None and plots:
             from streamq.runner import write_report_pages
-            write_report_pages(result)
+            write_report_pages(out, report)
 
     from streamq.report.page import overload_share
     rows = []
@@ -388,9 +387,9 @@ def compare(audio: str | Path, bits: int, methods: list[str] | str | None = None
         "seconds": info.frames / info.samplerate,
         "rms": rms,
         "max_rate": max_rate,
-        "complete": result.complete,
-        "last_sample": result.samples,
-        "run_seconds": result.seconds,
+        "complete": report["complete"],
+        "last_sample": report["samples"],
+        "run_seconds": chain.wall_seconds,
         "out_dir": str(out_dir) if out_dir is not None else None,
         "methods": rows,
     }

@@ -189,7 +189,7 @@ def run_point(job: dict[str, Any]) -> dict[str, Any]:
     from streamq.batch.work import _StopCheck, one_line
     from streamq.engine.audiofile import replacing
     from streamq.engine.graph import parse_graph
-    from streamq.engine.scheduler import build, run_offline
+    from streamq.chain import Chain
 
     t0 = time.perf_counter()
     out: dict[str, Any] = {"status": "not run", "error": None, "seconds": 0.0}
@@ -207,14 +207,13 @@ def run_point(job: dict[str, Any]) -> dict[str, Any]:
         with replacing(folder / "graph.toml") as f:
             f.write(text)
         graph = parse_graph(text, folder / "graph.toml")
-        built = build(graph, folder)
-        result = run_offline(built, progress=_StopCheck(stop_file), handle_signals=False)
-        meter = result.report.get("meters", {}).get(job["scheme"], {})
+        report = Chain(graph, folder).open().run(progress=_StopCheck(stop_file))
+        meter = report.get("meters", {}).get(job["scheme"], {})
         out.update({k: meter.get(k) for k in FIGURES})
-        if result.complete:
+        if report["complete"]:
             out["status"] = "done"
         else:
-            out.update(status="interrupted", error=f"stopped at sample {result.samples}")
+            out.update(status="interrupted", error=f"stopped at sample {report['samples']}")
     except Exception as exc:  # one bad point must not stop the sweep: record it
         out.update(status="failed", error=one_line(exc))
     out["seconds"] = time.perf_counter() - t0

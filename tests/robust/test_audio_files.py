@@ -56,7 +56,7 @@ subtype = "FLOAT"
 @pytest.fixture(autouse=True)
 def _no_plots(monkeypatch):
     import streamq.runner
-    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda result: [])
+    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda out_dir, report: [])
 
 
 def chain(folder, path: str, window='"50 ms"', hop='"10 ms"', header="", src_extra=""):

@@ -39,7 +39,7 @@ path = "out.wav"
 @pytest.fixture(autouse=True)
 def _no_plots(monkeypatch):
     import streamq.runner
-    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda result: [])
+    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda out_dir, report: [])
 
 
 @pytest.fixture

@@ -54,7 +54,7 @@ def _no_plots(monkeypatch):
     """Plots take ~1 s a run; they have their own tests (tests/test_report.py).
     Everything else of `streamq run` (report.json, audio and index files) stays."""
     import streamq.runner
-    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda result: [])
+    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda out_dir, report: [])
 
 
 def fields_of(kind: str) -> list[str]:

@@ -52,7 +52,7 @@ path = "copy.sqi"
 @pytest.fixture(autouse=True)
 def _no_plots(monkeypatch):
     import streamq.runner
-    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda result: [])
+    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda out_dir, report: [])
 
 
 def records(raw: bytes) -> list[tuple[int, int, int]]:

@@ -23,7 +23,7 @@ PACKAGE = REPO / "streamq"
 @pytest.fixture(autouse=True)
 def _no_plots(monkeypatch):
     import streamq.runner
-    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda result: [])
+    monkeypatch.setattr(streamq.runner, "write_report_pages", lambda out_dir, report: [])
 
 
 # -- node kinds are names, never code ------------------------------------------------

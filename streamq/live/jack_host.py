@@ -32,7 +32,6 @@ from __future__ import annotations
 
 import collections
 import os
-import signal
 import sys
 import threading
 import time
@@ -42,9 +41,9 @@ import numpy as np
 
 from streamq.engine.graph import Graph, infer_rate
 from streamq.errors import StreamqError
-from streamq.live.runner import (STALL_SECONDS, TIMES, _after, _gather, _terminal_meter,
+from streamq.live.runner import (TIMES, _after, _terminal_meter,
                                  callback_timing, live_summary, realtime_conditions,
-                                 worker_errors)
+                                 sigterm_interrupts, wait_for_end, worker_errors)
 
 
 def _import_jack():
@@ -379,17 +378,8 @@ def _run(jack, graph, chain, client, run: JackRun, out_dir: Path, args) -> int:
     meter = _terminal_meter(args)
     interrupted = stalled = False
     problem: StreamqError | None = None      # said after the report
-    old_term = None
-
-    def on_term(signum, frame):
-        raise KeyboardInterrupt
-
     try:
-        old_term = signal.signal(signal.SIGTERM, on_term)
-    except ValueError:  # not the main thread
-        pass
-    try:
-        with realtime_conditions():
+        with sigterm_interrupts(), realtime_conditions():
             try:
                 client.activate()
                 try:
@@ -398,15 +388,7 @@ def _run(jack, graph, chain, client, run: JackRun, out_dir: Path, args) -> int:
                     problem = exc
                     run.stopped = True
                     run.done.set()
-                seen, since = run.calls, time.monotonic()
-                while not run.done.wait(0.25):
-                    if meter:
-                        meter.update(_gather(run))
-                    if run.calls != seen:
-                        seen, since = run.calls, time.monotonic()
-                    elif time.monotonic() - since > STALL_SECONDS:
-                        stalled = True     # the server stopped calling us
-                        break
+                stalled = wait_for_end(run, meter)   # True: the server stopped calling us
             except KeyboardInterrupt:
                 interrupted = True
             stalled = stalled or run.server_gone is not None
@@ -416,8 +398,6 @@ def _run(jack, graph, chain, client, run: JackRun, out_dir: Path, args) -> int:
                 except jack.JackError:
                     stalled = True
     finally:
-        if old_term is not None:
-            signal.signal(signal.SIGTERM, old_term)
         if meter:
             meter.close()
     failed = run.error is not None

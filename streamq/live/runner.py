@@ -290,6 +290,43 @@ def _gather(run: LiveRun) -> dict:
     return stats
 
 
+@contextlib.contextmanager
+def sigterm_interrupts():
+    """SIGTERM raises KeyboardInterrupt inside the block (as Ctrl-C does), so a
+    terminated live run stops as an interrupted one: outputs closed, report
+    written. Outside the main thread nothing changes."""
+    def on_term(signum, frame):
+        raise KeyboardInterrupt
+    try:
+        old = signal.signal(signal.SIGTERM, on_term)
+    except ValueError:  # not the main thread
+        old = None
+    try:
+        yield
+    finally:
+        if old is not None:
+            signal.signal(signal.SIGTERM, old)
+
+
+def wait_for_end(run, meter, active=lambda: True) -> bool:
+    """Wait on the main thread until ``run.done`` is set, updating the terminal
+    meter four times a second. True when the audio stalled: no callback for
+    :data:`STALL_SECONDS` (the device or audio server went away), or
+    ``active()`` turned false without the run saying it is done. Ctrl-C
+    (KeyboardInterrupt) passes through."""
+    seen, since = run.calls, time.monotonic()
+    while not run.done.wait(0.25):
+        if not active():
+            return not run.done.is_set()
+        if meter:
+            meter.update(_gather(run))
+        if run.calls != seen:
+            seen, since = run.calls, time.monotonic()
+        elif time.monotonic() - since > STALL_SECONDS:
+            return True
+    return False
+
+
 def run_live(graph: Graph, out_dir: Path, args) -> int:
     """`streamq run` for graphs with live nodes: a PortAudio stream hosting a
     :class:`streamq.Chain` opened with ``realtime=True``."""
@@ -314,34 +351,13 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
         raise
     meter = _terminal_meter(args)
     interrupted = stalled = False
-    old_term = None
-
-    def on_term(signum, frame):
-        raise KeyboardInterrupt
-
     try:
-        old_term = signal.signal(signal.SIGTERM, on_term)
-    except ValueError:  # not the main thread
-        pass
-    try:
-        with realtime_conditions():
+        with sigterm_interrupts(), realtime_conditions():
             stream.start()
             try:
-                seen, since = run.calls, time.monotonic()
-                while not run.done.wait(0.25):
-                    if not stream.active:
-                        # the stream ended without our say: the device or server went away
-                        stalled = not run.done.is_set()
-                        break
-                    if meter:
-                        meter.update(_gather(run))
-                    if run.calls != seen:
-                        seen, since = run.calls, time.monotonic()
-                    elif time.monotonic() - since > STALL_SECONDS:
-                        # the device or audio server stopped calling us (e.g. the
-                        # server died): stop, keep what was recorded, say so
-                        stalled = True
-                        break
+                # a stream that ends without our say, or stops calling us: the device
+                # or audio server went away; stop, keep what was recorded, say so
+                stalled = wait_for_end(run, meter, lambda: stream.active)
             except KeyboardInterrupt:
                 interrupted = True
             if not stalled:
@@ -349,8 +365,6 @@ def run_live(graph: Graph, out_dir: Path, args) -> int:
                 stream.stop()
                 stream.close()
     finally:
-        if old_term is not None:
-            signal.signal(signal.SIGTERM, old_term)
         if meter:
             meter.close()
     failed = run.error is not None
